@@ -1,0 +1,1 @@
+"""HTTP layer: FastAPI app factory, routers, request/response models, problem+json errors."""

@@ -1,0 +1,1 @@
+"""Use-cases between the HTTP layer and the engine/storage: store, compile, recall, reconcile."""
