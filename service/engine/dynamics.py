@@ -1,0 +1,252 @@
+"""Settling: run the network dynamics from a batch of cues to fixed points, cycles or the step limit.
+
+Cues are an ``(n_cues, n_units)`` matrix with values in {-1, 0, +1}; 0 marks a unit the caller
+does not know. Three choices shape a run:
+
+* ``mode="sync"`` updates every unit of every active cue at once, as one float32 matrix
+  product for the whole batch; cues that reach a fixed point leave the active batch. With
+  symmetric weights the only attractors of this map are fixed points and 2-cycles
+  (Goles-Chacc, Fogelman-Soulié & Pellegrin 1985); a 2-cycle is detected and stopped.
+* ``mode="async"`` updates one unit at a time in a seeded random order, keeping the local
+  fields up to date with one row of W per flip. With symmetric W and a non-negative
+  diagonal the energy never rises (Hopfield 1982); a sweep with no flip ends the run.
+* ``clamp=True`` keeps the cue's known units fixed while the others settle.
+
+Ties in sign(h) keep the unit's previous value; a unit still at 0 whose field is exactly 0
+takes +1, so the same cue always settles the same way.
+
+Examples
+--------
+>>> import numpy as np
+>>> from service.engine import HebbianRule, settle
+>>> rng = np.random.default_rng(1)
+>>> X = np.where(rng.random((3, 200)) < 0.5, -1, 1)
+>>> rule = HebbianRule().fit(X)
+>>> cue = X[:1].copy(); cue[0, :60] = 0          # 30 % of the units unknown
+>>> result = settle(rule, cue)
+>>> bool((result.states[0] == X[0]).all()), bool(result.converged[0])
+(True, True)
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ._checks import as_cues, check_choice, check_int
+from .errors import ParameterError
+from .rules import DenseRule, MemoryRule, check_fitted_rule
+
+__all__ = ["MAX_STEPS", "MODES", "SettleResult", "settle"]
+
+MODES: tuple[str, ...] = ("sync", "async")
+#: Hard ceiling on the step limit a caller may ask for.
+MAX_STEPS = 10_000
+
+
+@dataclass(frozen=True)
+class SettleResult:
+    """Outcome of settling a batch of cues.
+
+    Attributes
+    ----------
+    states : ndarray of int8, shape (n_cues, n_units)
+        Final states, values ±1.
+    steps : ndarray of int64, shape (n_cues,)
+        Update steps taken (sync: whole-state updates; async: sweeps), counting the last one,
+        which found nothing to change.
+    converged : ndarray of bool, shape (n_cues,)
+        True where a fixed point was reached within the step limit.
+    cycle_length : ndarray of int64, shape (n_cues,)
+        2 where a 2-cycle was detected, 0 otherwise.
+    energies : list of ndarray of float64, or None
+        With ``record_energy``, the energy of each cue before the first step and after each
+        step (length steps + 1).
+    """
+
+    states: NDArray[np.int8]
+    steps: NDArray[np.int64]
+    converged: NDArray[np.bool_]
+    cycle_length: NDArray[np.int64]
+    energies: list[NDArray[np.float64]] | None = None
+
+    @property
+    def step_limit_hit(self) -> NDArray[np.bool_]:
+        """True where the run stopped at the step limit without a fixed point or a cycle."""
+        return np.asarray(~self.converged & (self.cycle_length == 0))
+
+
+def _sign_keep(h: NDArray[np.float32], prev: NDArray[np.float32]) -> NDArray[np.float32]:
+    """sign(h), keeping the previous value on ties and sending 0 with h = 0 to +1."""
+    out = np.sign(h)
+    tie = out == 0
+    if tie.any():
+        out[tie] = prev[tie]
+        out[tie & (out == 0)] = 1.0
+    return out.astype(np.float32, copy=False)
+
+
+def settle(
+    rule: MemoryRule,
+    cues: Any,
+    *,
+    mode: str = "sync",
+    clamp: bool = False,
+    max_steps: int = 100,
+    seed: int = 0,
+    record_energy: bool = False,
+) -> SettleResult:
+    """Run the dynamics of a fitted rule from each cue.
+
+    Parameters
+    ----------
+    rule : MemoryRule
+        A fitted rule (:class:`~service.engine.rules.HebbianRule` and the others).
+    cues : array_like, shape (n_cues, n_units)
+        Values in {-1, 0, +1}; 0 = unknown. A single cue of shape (n_units,) is accepted.
+    mode : {"sync", "async"}
+    clamp : bool
+        Keep the known units of each cue fixed.
+    max_steps : int
+        Step limit, 1 to :data:`MAX_STEPS`.
+    seed : int
+        Seed of the unit order in ``async`` mode.
+    record_energy : bool
+        Record each cue's energy before and after every step.
+
+    Returns
+    -------
+    SettleResult
+    """
+    check_fitted_rule(rule)
+    check_choice(mode, "mode", MODES)
+    if not isinstance(clamp, bool):
+        raise ParameterError(f"clamp must be true or false, got {clamp!r}")
+    if not isinstance(record_energy, bool):
+        raise ParameterError(f"record_energy must be true or false, got {record_energy!r}")
+    limit = check_int(max_steps, "max_steps", low=1, high=MAX_STEPS)
+    check_int(seed, "seed", low=0, high=2**63 - 1)
+    c = as_cues(cues, "cues", n_units=rule.n_units_)
+    if mode == "sync":
+        return _settle_sync(rule, c, clamp, limit, record_energy)
+    return _settle_async(rule, c, clamp, limit, seed, record_energy)
+
+
+def _settle_sync(
+    rule: MemoryRule, cues: NDArray[np.int8], clamp: bool, limit: int, record: bool
+) -> SettleResult:
+    n_cues, _ = cues.shape
+    known = cues != 0
+    n_known = np.count_nonzero(known, axis=1).astype(np.int64)
+    state = cues.astype(np.float32)
+    prev = np.zeros_like(state)  # state one step back, for 2-cycle detection
+    steps = np.zeros(n_cues, dtype=np.int64)
+    converged = np.zeros(n_cues, dtype=bool)
+    cycle = np.zeros(n_cues, dtype=np.int64)
+    trace: list[list[float]] | None = None
+    if record:
+        trace = [[float(e)] for e in rule.energy(state, n_known)]
+    active = np.arange(n_cues)
+    for step in range(limit):
+        s = state[active]
+        h = rule.local_fields(s, n_known[active])
+        new = _sign_keep(h, s)
+        if clamp:
+            k = known[active]
+            new[k] = s[k]
+        steps[active] += 1
+        if trace is not None:
+            for i, e in zip(active, rule.energy(new, n_known[active]), strict=True):
+                trace[i].append(float(e))
+        fixed = (new == s).all(axis=1)
+        two_cycle = ~fixed & (new == prev[active]).all(axis=1) if step > 0 else np.zeros_like(fixed)
+        prev[active] = s
+        state[active] = new
+        converged[active[fixed]] = True
+        cycle[active[two_cycle]] = 2
+        active = active[~(fixed | two_cycle)]
+        if active.size == 0:
+            break
+    return SettleResult(
+        states=state.astype(np.int8),
+        steps=steps,
+        converged=converged,
+        cycle_length=cycle,
+        energies=None if trace is None else [np.asarray(t) for t in trace],
+    )
+
+
+def _settle_async(
+    rule: MemoryRule,
+    cues: NDArray[np.int8],
+    clamp: bool,
+    limit: int,
+    seed: int,
+    record: bool,
+) -> SettleResult:
+    n_cues, n_units = cues.shape
+    rng = np.random.default_rng(seed)
+    known = cues != 0
+    n_known = np.count_nonzero(known, axis=1).astype(np.int64)
+    free = ~known if clamp else np.ones_like(known)
+    state = cues.astype(np.float32)
+    steps = np.zeros(n_cues, dtype=np.int64)
+    converged = np.zeros(n_cues, dtype=bool)
+    trace: list[list[float]] | None = None
+    if record:
+        trace = [[float(e)] for e in rule.energy(state, n_known)]
+    dense = isinstance(rule, DenseRule)
+    active = np.arange(n_cues)
+    for _ in range(limit):
+        s = state[active]
+        nk = n_known[active]
+        fr = free[active]
+        flipped = np.zeros(active.size, dtype=bool)
+        if dense:
+            # logits β' X s are kept current; one flip moves them by β' Δ x_i
+            betas = rule._betas(s, nk)
+            logits = rule.logits(s, nk)
+            xs = rule._x
+        else:
+            fields = rule.local_fields(s, nk)
+        for unit in rng.permutation(n_units):
+            if dense:
+                z = logits - logits.max(axis=1, keepdims=True)
+                a = np.exp(z)
+                h_u = (a @ xs[:, unit]) / a.sum(axis=1)
+            else:
+                h_u = fields[:, unit]
+            cur = s[:, unit]
+            new = np.sign(h_u).astype(np.float32)
+            tie = new == 0
+            new[tie] = cur[tie]
+            new[tie & (new == 0)] = 1.0
+            delta = (new - cur) * fr[:, unit]
+            moved = np.flatnonzero(delta)
+            if moved.size == 0:
+                continue
+            s[moved, unit] += delta[moved]
+            flipped[moved] = True
+            if dense:
+                logits[moved] += (betas[moved] * delta[moved])[:, None] * xs[:, unit][None, :]
+            else:
+                fields[moved] += delta[moved][:, None] * rule.unit_weights(unit)[None, :]
+        state[active] = s
+        steps[active] += 1
+        if trace is not None:
+            for i, e in zip(active, rule.energy(s, nk), strict=True):
+                trace[i].append(float(e))
+        converged[active[~flipped]] = True
+        active = active[flipped]
+        if active.size == 0:
+            break
+    return SettleResult(
+        states=state.astype(np.int8),
+        steps=steps,
+        converged=converged,
+        cycle_length=np.zeros(n_cues, dtype=np.int64),
+        energies=None if trace is None else [np.asarray(t) for t in trace],
+    )

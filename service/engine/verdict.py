@@ -1,0 +1,346 @@
+"""Verdicts: what a settled state means, judged from its overlaps with the stored memories.
+
+For each cue, with X the stored patterns and s the settled state,
+
+* overlap m_μ = (1/N) Σ_i ξ^μ_i s_i with every memory; the best memory μ* and the margin
+  m* − m₂ to the runner-up;
+* cue overlap c_μ = (1/n) Σ_{i known} ξ^μ_i c_i over the cue's n known units, and the **cue
+  margin** c_(1) − c_(2): how clearly the cue itself points at one memory;
+* cue agreement a = (1/n) Σ_{i known} s_i c_i: whether the settled state still fits the cue.
+
+The verdict, checked in this order:
+
+=========== ============ ==========================================================
+verdict     reason       when
+=========== ============ ==========================================================
+unsettled   cycle        the dynamics entered a 2-cycle
+unsettled   step_limit   no fixed point within the step limit
+spurious    reversed     the state is close to the negative of a memory (m ≤ −θ_m)
+spurious    mixture      m* < θ_m and at least two memories overlap above the chance
+                         ceiling (a blend of memories, e.g. the symmetric 3-mixture)
+spurious    far          m* < θ_m otherwise (a spin-glass state), or the agreement with
+                         the cue is below θ_a (the fragment fits no stored memory)
+spurious    ambiguous    the cue margin is below θ_c: the fragment fits several memories
+recalled    clean        everything above holds
+=========== ============ ==========================================================
+
+Default thresholds come from the chance level. For a state unrelated to the memories each
+overlap is a sum of n independent ±1/n terms, so it has standard deviation 1/√n; the largest
+of P such overlaps is about √(2 ln P / n) (the Gaussian extreme-value estimate). Hence:
+
+* θ_m (recall overlap) = clip(1 − 10/√N, 0.7, 0.95): the state is within 5√N flipped bits of a
+  memory, which no chance overlap reaches, and above the ½ of a 3-mixture.
+* chance ceiling on n units = √(2 ln(2P) / n) + 3/√n: a memory overlapping more than this is
+  really present (used for θ_a and for telling mixtures from spin-glass states).
+* θ_c (cue margin) = 3 √2 / √n: the difference of two independent chance overlaps has
+  standard deviation √2/√n; a lead smaller than three of them is not a lead.
+
+Collections of real records are correlated, so the service calibrates θ_a and θ_c on the
+collection's own data (see :mod:`service.engine.calibration`); the defaults are for random-like
+patterns.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ._checks import as_cues, as_patterns, check_float, check_int
+from .dynamics import SettleResult
+from .errors import ParameterError, ShapeError
+
+__all__ = [
+    "REASONS",
+    "VERDICTS",
+    "Verdict",
+    "VerdictBatch",
+    "VerdictThresholds",
+    "chance_ceiling",
+    "judge",
+]
+
+VERDICTS: tuple[str, ...] = ("recalled", "spurious", "unsettled")
+REASONS: dict[str, tuple[str, ...]] = {
+    "recalled": ("clean",),
+    "spurious": ("reversed", "mixture", "far", "ambiguous"),
+    "unsettled": ("cycle", "step_limit"),
+}
+
+
+def chance_ceiling(n_memories: int, n_units: int) -> float:
+    """Overlap above which a memory is really present, for P memories and n units.
+
+    √(2 ln(2P) / n) + 3/√n: the expected largest of P chance overlaps plus three standard
+    deviations.
+
+    >>> round(chance_ceiling(100, 1000), 3)
+    0.198
+    """
+    n = max(int(n_units), 1)
+    p = max(int(n_memories), 1)
+    return math.sqrt(2.0 * math.log(2.0 * p) / n) + 3.0 / math.sqrt(n)
+
+
+@dataclass(frozen=True)
+class VerdictThresholds:
+    """Thresholds of the verdict; None means the chance-derived default (see module doc).
+
+    Parameters
+    ----------
+    recall_overlap : float or None
+        θ_m, the least overlap of the settled state with its best memory.
+    min_agreement : float or None
+        θ_a, the least agreement between the settled state and the cue on its known units.
+    min_cue_margin : float or None
+        θ_c, the least lead of the cue's best memory over the runner-up.
+    """
+
+    recall_overlap: float | None = None
+    min_agreement: float | None = None
+    min_cue_margin: float | None = None
+
+    def __post_init__(self) -> None:
+        for name in ("recall_overlap", "min_agreement", "min_cue_margin"):
+            value = getattr(self, name)
+            if value is not None:
+                check_float(value, name, low=-1.0, high=2.0)
+
+    def resolved_recall_overlap(self, n_units: int) -> float:
+        if self.recall_overlap is not None:
+            return self.recall_overlap
+        return min(0.95, max(0.7, 1.0 - 10.0 / math.sqrt(n_units)))
+
+    def to_dict(self) -> dict[str, float | None]:
+        return {
+            "recall_overlap": self.recall_overlap,
+            "min_agreement": self.min_agreement,
+            "min_cue_margin": self.min_cue_margin,
+        }
+
+
+@dataclass(frozen=True)
+class Verdict:
+    """Verdict for one cue (one row of a :class:`VerdictBatch`)."""
+
+    verdict: str
+    reason: str
+    best: int
+    overlap: float
+    margin: float
+    cue_overlap: float
+    cue_margin: float
+    cue_agreement: float
+    nearest: list[tuple[int, float]] = field(default_factory=list)
+    steps: int = 0
+    converged: bool = True
+    cycle_length: int = 0
+
+
+@dataclass(frozen=True)
+class VerdictBatch:
+    """Verdicts for a batch of cues, as arrays (row i belongs to cue i).
+
+    Attributes
+    ----------
+    verdict, reason : list of str
+    best : ndarray of int64, shape (n_cues,)
+        Index of the memory with the highest overlap with the settled state.
+    overlap, margin : ndarray of float64
+        m* and m* − m₂ of the settled state.
+    cue_best : ndarray of int64
+        Index of the memory the cue itself overlaps most.
+    cue_overlap, cue_margin, cue_agreement : ndarray of float64
+    nearest : ndarray of int64, shape (n_cues, k)
+        The k memories nearest the settled state, best first.
+    nearest_overlap : ndarray of float64, shape (n_cues, k)
+    """
+
+    verdict: list[str]
+    reason: list[str]
+    best: NDArray[np.int64]
+    overlap: NDArray[np.float64]
+    margin: NDArray[np.float64]
+    cue_best: NDArray[np.int64]
+    cue_overlap: NDArray[np.float64]
+    cue_margin: NDArray[np.float64]
+    cue_agreement: NDArray[np.float64]
+    nearest: NDArray[np.int64]
+    nearest_overlap: NDArray[np.float64]
+    steps: NDArray[np.int64]
+    converged: NDArray[np.bool_]
+    cycle_length: NDArray[np.int64]
+    thresholds: dict[str, NDArray[np.float64]] = field(default_factory=dict)
+
+    def __len__(self) -> int:
+        return len(self.verdict)
+
+    def __getitem__(self, i: int) -> Verdict:
+        return Verdict(
+            verdict=self.verdict[i],
+            reason=self.reason[i],
+            best=int(self.best[i]),
+            overlap=float(self.overlap[i]),
+            margin=float(self.margin[i]),
+            cue_overlap=float(self.cue_overlap[i]),
+            cue_margin=float(self.cue_margin[i]),
+            cue_agreement=float(self.cue_agreement[i]),
+            nearest=[
+                (int(j), float(m))
+                for j, m in zip(self.nearest[i], self.nearest_overlap[i], strict=True)
+            ],
+            steps=int(self.steps[i]),
+            converged=bool(self.converged[i]),
+            cycle_length=int(self.cycle_length[i]),
+        )
+
+
+def _top2(m: NDArray[np.float32]) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64]]:
+    """Index of the best column, best value and second-best value of each row."""
+    best = np.argmax(m, axis=1).astype(np.int64)
+    rows = np.arange(m.shape[0])
+    top = m[rows, best].astype(np.float64)
+    if m.shape[1] == 1:
+        return best, top, np.full(m.shape[0], -1.0)
+    masked = m.copy()
+    masked[rows, best] = -np.inf
+    second = masked.max(axis=1).astype(np.float64)
+    return best, top, second
+
+
+def judge(
+    patterns: Any,
+    cues: Any,
+    result: SettleResult,
+    thresholds: VerdictThresholds | None = None,
+    *,
+    top_k: int = 3,
+) -> VerdictBatch:
+    """Judge settled states against the stored patterns.
+
+    Parameters
+    ----------
+    patterns : array_like, shape (n_memories, n_units)
+        The stored ±1 patterns (``rule.patterns_``).
+    cues : array_like, shape (n_cues, n_units)
+        The cues the states were settled from (values in {-1, 0, +1}).
+    result : SettleResult
+        What :func:`~service.engine.dynamics.settle` returned for these cues.
+    thresholds : VerdictThresholds, optional
+    top_k : int
+        How many nearest memories to list (1 to 100).
+
+    Returns
+    -------
+    VerdictBatch
+    """
+    X = as_patterns(patterns, "patterns")
+    n_mem, n_units = X.shape
+    c = as_cues(cues, "cues", n_units=n_units)
+    if not isinstance(result, SettleResult):
+        raise ParameterError(f"result must be what settle() returned, got {type(result).__name__}")
+    if thresholds is not None and not isinstance(thresholds, VerdictThresholds):
+        raise ParameterError(
+            f"thresholds must be a VerdictThresholds, got {type(thresholds).__name__}"
+        )
+    states = as_cues(result.states, "result.states", n_units=n_units)
+    if states.shape[0] != c.shape[0]:
+        raise ShapeError(
+            f"result has {states.shape[0]} states for {c.shape[0]} cues; they must match"
+        )
+    for name in ("steps", "converged", "cycle_length"):
+        if np.shape(getattr(result, name)) != (c.shape[0],):
+            raise ShapeError(
+                f"result.{name} has shape {np.shape(getattr(result, name))}, "
+                f"expected ({c.shape[0]},)"
+            )
+    k = min(check_int(top_k, "top_k", low=1, high=100), n_mem)
+    th = thresholds or VerdictThresholds()
+
+    xf = X.astype(np.float32)
+    sf = states.astype(np.float32)
+    cf = c.astype(np.float32)
+    n_known = np.maximum(np.count_nonzero(c, axis=1), 1).astype(np.float64)
+
+    overlaps = (sf @ xf.T) / np.float32(n_units)  # (B, P), exact up to rounding of 1/N
+    best, m_best, m_second = _top2(overlaps)
+    m_min = overlaps.min(axis=1).astype(np.float64)
+    cue_ov = (cf @ xf.T) / n_known[:, None].astype(np.float32)
+    cue_best, c_best, c_second = _top2(cue_ov)
+    agreement = np.einsum("ij,ij->i", sf, cf).astype(np.float64) / n_known
+
+    if k < n_mem:
+        part = np.argpartition(-overlaps, k - 1, axis=1)[:, :k]
+    else:
+        part = np.tile(np.arange(n_mem), (overlaps.shape[0], 1))
+    part_ov = np.take_along_axis(overlaps, part, axis=1)
+    order = np.argsort(-part_ov, axis=1, kind="stable")
+    nearest = np.take_along_axis(part, order, axis=1).astype(np.int64)
+    nearest_ov = np.take_along_axis(part_ov, order, axis=1).astype(np.float64)
+
+    theta_m = th.resolved_recall_overlap(n_units)
+    ceiling_state = chance_ceiling(n_mem, n_units)
+    ceiling_cue = np.array([chance_ceiling(n_mem, int(n)) for n in n_known])
+    theta_a = (
+        np.full(c.shape[0], th.min_agreement)
+        if th.min_agreement is not None
+        else np.minimum(ceiling_cue, 0.9)
+    )
+    theta_c = (
+        np.full(c.shape[0], th.min_cue_margin)
+        if th.min_cue_margin is not None
+        else 3.0 * math.sqrt(2.0) / np.sqrt(n_known)
+    )
+    n_present = (overlaps >= np.float32(ceiling_state)).sum(axis=1)
+
+    verdict: list[str] = []
+    reason: list[str] = []
+    for i in range(c.shape[0]):
+        if not result.converged[i]:
+            verdict.append("unsettled")
+            reason.append("cycle" if result.cycle_length[i] > 0 else "step_limit")
+        elif m_min[i] <= -theta_m and -m_min[i] > m_best[i]:
+            verdict.append("spurious")
+            reason.append("reversed")
+        elif m_best[i] < theta_m:
+            verdict.append("spurious")
+            reason.append("mixture" if n_present[i] >= 2 else "far")
+        elif agreement[i] < theta_a[i]:
+            verdict.append("spurious")
+            reason.append("far")
+        elif c_best[i] - c_second[i] < theta_c[i]:
+            verdict.append("spurious")
+            reason.append("ambiguous")
+        else:
+            verdict.append("recalled")
+            reason.append("clean")
+
+    return VerdictBatch(
+        verdict=verdict,
+        reason=reason,
+        best=best,
+        overlap=m_best,
+        margin=m_best - m_second,
+        cue_best=cue_best,
+        cue_overlap=c_best,
+        cue_margin=c_best - c_second,
+        cue_agreement=agreement,
+        nearest=nearest,
+        nearest_overlap=nearest_ov,
+        steps=np.asarray(result.steps, dtype=np.int64),
+        converged=np.asarray(result.converged, dtype=bool),
+        cycle_length=np.asarray(result.cycle_length, dtype=np.int64),
+        thresholds={
+            "recall_overlap": np.full(c.shape[0], theta_m),
+            "min_agreement": np.asarray(theta_a, dtype=np.float64),
+            "min_cue_margin": np.asarray(theta_c, dtype=np.float64),
+        },
+    )
+
+
+def with_defaults(thresholds: VerdictThresholds | None, **overrides: float | None) -> VerdictThresholds:
+    """A copy of ``thresholds`` with the given fields replaced."""
+    return replace(thresholds or VerdictThresholds(), **overrides)
