@@ -12,9 +12,11 @@ random patterns at the same load α = P/N:
   Guyon & Dreyfus 1985), with basins that shrink as α → 1 (Kanter & Sompolinsky 1987);
 * the dense rule's capacity grows exponentially in N (Ramsauer et al. 2020).
 
-Correlated patterns break the random-pattern figures: the crosstalk of P patterns with mean
-pairwise overlap ρ grows like P ρ instead of √P, so the report flags correlation well above
-the chance level 1/√N.
+Correlated patterns break the random-pattern figures. In the Hebbian local field
+h_i = ξ^μ_i + Σ_{ν≠μ} ξ^ν_i m_νμ the crosstalk of P patterns whose mean pairwise overlap is ρ
+grows like (P − 1) ρ, against √(P/N) for random patterns and a signal of 1. The report gives
+this *correlation load* (P − 1) ρ and flags the memories as correlated when it passes ½ or when
+the mean |overlap| is over four times the chance level 1/√N.
 
 Examples
 --------
@@ -72,8 +74,10 @@ class CapacityReport:
     n_units: int
     n_memories: int
     load: float
+    mean_overlap: float
     mean_abs_overlap: float
     max_abs_overlap: float
+    correlation_load: float
     chance_overlap: float
     duplicates: int
     checked_memories: int
@@ -90,18 +94,25 @@ class CapacityReport:
         return asdict(self)
 
 
-def _pair_stats(X: NDArray[np.int8], rng: np.random.Generator, limit: int) -> tuple[float, float, int]:
-    """Mean and max |overlap| between distinct patterns, and the number of exact duplicates."""
+def _pair_stats(
+    X: NDArray[np.int8], rng: np.random.Generator, limit: int
+) -> tuple[float, float, float, int]:
+    """Mean signed and absolute overlap, max |overlap| between distinct patterns; duplicates."""
     p, n = X.shape
     uniq = np.unique(X, axis=0).shape[0]
     duplicates = p - uniq
     if p < 2:
-        return 0.0, 0.0, duplicates
+        return 0.0, 0.0, 0.0, duplicates
     idx = np.arange(p) if p <= limit else np.sort(rng.choice(p, size=limit, replace=False))
     xs = X[idx].astype(np.float32)
-    g = np.abs(xs @ xs.T) / np.float32(n)
+    g = (xs @ xs.T) / np.float32(n)
     np.fill_diagonal(g, np.nan)
-    return float(np.nanmean(g)), float(np.nanmax(g)), duplicates
+    return (
+        float(np.nanmean(g)),
+        float(np.nanmean(np.abs(g))),
+        float(np.nanmax(np.abs(g))),
+        duplicates,
+    )
 
 
 def _stability(rule: MemoryRule, X: NDArray[np.int8]) -> tuple[float, float]:
@@ -137,12 +148,13 @@ def capacity_report(rule: MemoryRule, *, sample: int = 2000, seed: int = 0) -> C
     rng = np.random.default_rng(seed)
     p, n = X.shape
     load = p / n
-    mean_ov, max_ov, dups = _pair_stats(X, rng, n_check)
+    mean_signed, mean_ov, max_ov, dups = _pair_stats(X, rng, n_check)
     idx = np.arange(p) if p <= n_check else np.sort(rng.choice(p, size=n_check, replace=False))
     fixed_frac, unstable_frac = _stability(rule, X[idx])
     chance = 1.0 / math.sqrt(n)
-    # Random patterns have mean |overlap| ≈ √(2/π)/√N; several times that is real correlation.
-    correlated = mean_ov > 4.0 * chance
+    # Random patterns have mean |overlap| ≈ √(2/π)/√N and a signed mean near 0.
+    corr_load = (p - 1) * mean_signed
+    correlated = corr_load > 0.5 or mean_ov > 4.0 * chance
 
     name = rule.name
     if name == "hebbian":
@@ -155,14 +167,18 @@ def capacity_report(rule: MemoryRule, *, sample: int = 2000, seed: int = 0) -> C
         cap = math.inf
     used = p / cap if math.isfinite(cap) else 0.0
 
-    recommended, advice = _advise(rule, load, used, cap, correlated, mean_ov, fixed_frac, dups)
+    recommended, advice = _advise(
+        rule, load, used, cap, correlated, mean_signed, corr_load, fixed_frac, dups
+    )
     return CapacityReport(
         rule=name,
         n_units=n,
         n_memories=p,
         load=load,
+        mean_overlap=mean_signed,
         mean_abs_overlap=mean_ov,
         max_abs_overlap=max_ov,
+        correlation_load=corr_load,
         chance_overlap=chance,
         duplicates=dups,
         checked_memories=int(idx.size),
@@ -184,6 +200,7 @@ def _advise(
     cap: float,
     correlated: bool,
     mean_ov: float,
+    corr_load: float,
     fixed_frac: float,
     dups: int,
 ) -> tuple[str, str]:
@@ -201,8 +218,9 @@ def _advise(
             )
         if correlated:
             parts.append(
-                f"the memories are correlated (mean |overlap| {mean_ov:.2f}, chance "
-                f"{1 / math.sqrt(rule.n_units_):.2f}), which the {name} rule cannot store"
+                f"the memories are correlated (mean overlap {mean_ov:.3f}; crosstalk "
+                f"(P-1)·overlap = {corr_load:.1f} against a signal of 1), which the {name} "
+                "rule cannot store"
             )
     elif name == "projection":
         if used > 0.5:

@@ -1,4 +1,4 @@
-"""Settling: run the network dynamics from a batch of cues to fixed points, cycles or the step limit.
+"""Settling: run the network dynamics from a batch of cues to a fixed point, a cycle or the limit.
 
 Cues are an ``(n_cues, n_units)`` matrix with values in {-1, 0, +1}; 0 marks a unit the caller
 does not know. Three choices shape a run:
@@ -198,22 +198,23 @@ def _settle_async(
     trace: list[list[float]] | None = None
     if record:
         trace = [[float(e)] for e in rule.energy(state, n_known)]
-    dense = isinstance(rule, DenseRule)
+    # kept as the narrowed type, so the dense-only attributes below type-check
+    dense = rule if isinstance(rule, DenseRule) else None
     active = np.arange(n_cues)
     for _ in range(limit):
         s = state[active]
         nk = n_known[active]
         fr = free[active]
         flipped = np.zeros(active.size, dtype=bool)
-        if dense:
+        if dense is not None:
             # logits β' X s are kept current; one flip moves them by β' Δ x_i
-            betas = rule._betas(s, nk)
-            logits = rule.logits(s, nk)
-            xs = rule._x
+            betas = dense._betas(s, nk)
+            logits = dense.logits(s, nk)
+            xs = dense._x
         else:
             fields = rule.local_fields(s, nk)
         for unit in rng.permutation(n_units):
-            if dense:
+            if dense is not None:
                 z = logits - logits.max(axis=1, keepdims=True)
                 a = np.exp(z)
                 h_u = (a @ xs[:, unit]) / a.sum(axis=1)
@@ -230,7 +231,7 @@ def _settle_async(
                 continue
             s[moved, unit] += delta[moved]
             flipped[moved] = True
-            if dense:
+            if dense is not None:
                 logits[moved] += (betas[moved] * delta[moved])[:, None] * xs[:, unit][None, :]
             else:
                 fields[moved] += delta[moved][:, None] * rule.unit_weights(unit)[None, :]

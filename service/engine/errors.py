@@ -9,7 +9,7 @@ HTTP status and a stable problem type.
     ValueError
     └── EngineError
         ├── ShapeError            an array has the wrong number of dimensions or size
-        ├── StateValueError       a pattern, cue or state holds a value outside its allowed set, or NaN
+        ├── StateValueError       a pattern, cue or state holds a disallowed value, or NaN
         ├── ParameterError        a hyperparameter or option is outside its allowed range
         ├── EmptyMemoryError      an operation needs at least one stored memory
         ├── DependentMemoryError  the projection rule met duplicate or linearly dependent memories

@@ -119,7 +119,7 @@ class MemoryRule:
 
 
 def check_fitted_rule(rule: Any, name: str = "rule") -> MemoryRule:
-    """Require a fitted :class:`MemoryRule`; anything else is an engine error, not an AttributeError."""
+    """Require a fitted :class:`MemoryRule`; anything else is an engine error, not a crash."""
     if not isinstance(rule, MemoryRule):
         raise ParameterError(
             f"{name} must be a fitted learning rule (see make_rule), got {type(rule).__name__}"
@@ -166,7 +166,7 @@ class _MatrixRule(MemoryRule):
         return np.asarray(-0.5 * np.einsum("ij,ij->i", states.astype(np.float64), h))
 
     def unit_weights(self, unit: int) -> F32:
-        row = self._w[unit]
+        row: F32 = self._w[unit]
         if self._scale != 1.0:
             return (row * np.float32(self._scale)).astype(np.float32)
         return row
@@ -490,7 +490,8 @@ class ProjectionRule(_MatrixRule):
         self._w -= (np.multiply.outer(u, u) / uu).astype(np.float32)
         self.diagonal_ -= u * u / uu
         gram = np.delete(np.delete(self.gram_, i, axis=0), i, axis=1)
-        self._after_update(np.delete(self.patterns_, i, axis=0), gram, np.linalg.cholesky(gram))
+        chol = np.asarray(np.linalg.cholesky(gram), dtype=np.float64)
+        self._after_update(np.delete(self.patterns_, i, axis=0), gram, chol)
         return self
 
     def _after_update(self, patterns: I8, gram: F64, chol: F64) -> None:
@@ -663,7 +664,7 @@ def make_rule(name: str, **options: Any) -> MemoryRule:
     >>> make_rule("oja")
     Traceback (most recent call last):
         ...
-    service.engine.errors.ParameterError: rule must be one of hebbian, storkey, projection, dense; got 'oja'
+    service.engine.errors.ParameterError: rule must be one of hebbian, storkey, ...; got 'oja'
     """
     if not isinstance(name, str) or name not in _RULES:
         raise ParameterError(f"rule must be one of {', '.join(RULE_NAMES)}; got {name!r}")

@@ -198,7 +198,9 @@ class VerdictBatch:
         )
 
 
-def _top2(m: NDArray[np.float32]) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64]]:
+def _top2(
+    m: NDArray[np.float32],
+) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64]]:
     """Index of the best column, best value and second-best value of each row."""
     best = np.argmax(m, axis=1).astype(np.int64)
     rows = np.arange(m.shape[0])
@@ -341,6 +343,8 @@ def judge(
     )
 
 
-def with_defaults(thresholds: VerdictThresholds | None, **overrides: float | None) -> VerdictThresholds:
+def with_defaults(
+    thresholds: VerdictThresholds | None, **overrides: float | None
+) -> VerdictThresholds:
     """A copy of ``thresholds`` with the given fields replaced."""
     return replace(thresholds or VerdictThresholds(), **overrides)
