@@ -11,10 +11,13 @@ compile time the service estimates, from the stored records alone:
 * **recombined null cues** — known fields drawn from different records (a cross-check).
 
 For each cue the statistics the verdict uses are measured on the cue itself over its known
-units: the agreement with the memory it lands on (its best overlap) and the cue margin (best −
-runner-up). The thresholds (θ_a, θ_c) are then picked on a grid to accept as many positive cues
-as possible while at most ``null_rate`` of each null set and at most ``wrong_rate`` of the
-accepted positives (cues whose best memory is not their own record) would be accepted.
+units: the field agreement with the memory it lands on (the least agreement over its known
+fields) and the cue margin (best − runner-up overall overlap). The thresholds (θ_f, θ_c) are
+then picked on a grid to accept as many positive cues as possible while at most ``null_rate``
+of each null set and at most ``wrong_rate`` of the accepted positives (cues whose best memory is
+not their own record) would be accepted. The whole-cue agreement θ_a keeps its chance-level
+default: the field agreement is the sharper test, since a fragment of an unstored record tends
+to match its nearest memory on some fields and not at all on another.
 
 With the dense rule the settled state is the best-overlapping memory, so these cue-side
 statistics are exactly what :func:`~service.engine.verdict.judge` measures.
@@ -35,7 +38,7 @@ from .codec import Codec
 from .errors import EmptyMemoryError
 from .noise import CUE_KINDS, make_cue, recombined_cue
 from .rules import MemoryRule
-from .verdict import VerdictThresholds
+from .verdict import VerdictThresholds, field_agreement
 
 __all__ = ["CalibrationResult", "calibrate", "cue_statistics"]
 
@@ -60,11 +63,17 @@ class CalibrationResult:
 
 
 def cue_statistics(
-    patterns: NDArray[np.int8], cues: NDArray[np.int8], exclude: NDArray[np.int64] | None = None
-) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64]]:
-    """Best memory, best overlap and cue margin of each cue over its known units.
+    patterns: NDArray[np.int8],
+    cues: NDArray[np.int8],
+    exclude: NDArray[np.int64] | None = None,
+    blocks: Sequence[slice] | None = None,
+) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """Best memory, best overlap, cue margin and field agreement of each cue.
 
-    ``exclude[i]`` (≥ 0) masks memory ``exclude[i]`` out for cue i (leave-one-out).
+    Overlaps are over each cue's known units; the field agreement is measured against the best
+    memory (see :func:`~service.engine.verdict.field_agreement`; equal to the best overlap
+    without ``blocks``). ``exclude[i]`` (≥ 0) masks memory ``exclude[i]`` out for cue i
+    (leave-one-out).
     """
     xf = patterns.astype(np.float32)
     cf = cues.astype(np.float32)
@@ -81,7 +90,11 @@ def cue_statistics(
     else:
         second = np.full(ov.shape[0], -1.0)
     second = np.where(np.isfinite(second), second, -1.0)
-    return best, top, top - second
+    if blocks:
+        field = field_agreement(xf[best], cf, blocks)
+    else:
+        field = top
+    return best, top, top - second, field
 
 
 def calibrate(
@@ -91,7 +104,7 @@ def calibrate(
     keys: Sequence[str] | None = None,
     *,
     n_cues: int = 1000,
-    null_rate: float = 0.02,
+    null_rate: float = 0.01,
     wrong_rate: float = 0.005,
     seed: int = 0,
 ) -> CalibrationResult:
@@ -137,11 +150,13 @@ def calibrate(
     rec = codec.encode_cues(rec_cues)
     own = np.asarray(picks, dtype=np.int64)
 
-    p_best, p_top, p_margin = cue_statistics(patterns, pos)
-    _, l_top, l_margin = cue_statistics(patterns, pos, exclude=own)
-    _, r_top, r_margin = cue_statistics(patterns, rec)
+    blocks = list(codec.schema.slices.values())
+    p_best, _, p_margin, p_top = cue_statistics(patterns, pos, blocks=blocks)
+    _, _, l_margin, l_top = cue_statistics(patterns, pos, exclude=own, blocks=blocks)
+    _, _, r_margin, r_top = cue_statistics(patterns, rec, blocks=blocks)
     p_ok = p_best == own
 
+    # below, "top" is the field agreement θ_f is compared with
     candidates_a = np.unique(np.concatenate([l_top, r_top, p_top, [-1.0]]))
     candidates_c = np.unique(np.concatenate([l_margin, r_margin, p_margin, [0.0]]))
     # thin the grids; a few hundred points per axis keep this O(grid² · cues) step cheap
@@ -177,7 +192,7 @@ def calibrate(
         if best is None or cand[0] > best[0] or (cand[0] == best[0] and cand[1:] > best[1:]):
             best = cand
     if best is None:  # nothing separates: accept nothing rather than guess
-        theta_a, theta_c = 1.0 + 1e-6, 2.0
+        theta_a, theta_c = 1.0 + 1e-6, 2.0  # θ_f above any agreement: nothing is recalled
     else:
         _, theta_a, theta_c = best
     theta_c = max(theta_c, 1e-6)
@@ -185,7 +200,7 @@ def calibrate(
     acc = (p_top >= theta_a) & (p_margin >= theta_c)
     n_acc = int(acc.sum())
     return CalibrationResult(
-        thresholds=VerdictThresholds(min_agreement=theta_a, min_cue_margin=theta_c),
+        thresholds=VerdictThresholds(min_field_agreement=theta_a, min_cue_margin=theta_c),
         n_positive=n,
         n_null=n,
         positive_accept_rate=float((acc & p_ok).mean()),

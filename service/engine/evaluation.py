@@ -134,7 +134,8 @@ def evaluate(
         for start in range(0, len(cs.cues), size):
             part = encoded[start : start + size]
             res = settle(rule, part, mode=mode, max_steps=max_steps)
-            v = judge(rule.patterns_, part, res, thresholds, top_k=1)
+            blocks = list(codec.schema.slices.values())
+            v = judge(rule.patterns_, part, res, thresholds, top_k=1, blocks=blocks)
             best[start : start + size] = v.best
             verdicts.extend(v.verdict)
         nn = nearest_neighbour(rule.patterns_, encoded)

@@ -6,7 +6,11 @@ For each cue, with X the stored patterns and s the settled state,
   m* − m₂ to the runner-up;
 * cue overlap c_μ = (1/n) Σ_{i known} ξ^μ_i c_i over the cue's n known units, and the **cue
   margin** c_(1) − c_(2): how clearly the cue itself points at one memory;
-* cue agreement a = (1/n) Σ_{i known} s_i c_i: whether the settled state still fits the cue.
+* cue agreement a = (1/n) Σ_{i known} s_i c_i: whether the settled state still fits the cue;
+* field agreement f = the least, over the cue's known fields (``blocks``), of the same
+  agreement measured on that field's block alone. A fragment of a stored record agrees on every
+  field it gives (a typo or a jittered number lowers one field a little); a fragment of a record
+  that is not stored usually matches its nearest memory on some fields and not at all on another.
 
 The verdict, checked in this order:
 
@@ -19,7 +23,8 @@ spurious    reversed     the state is close to the negative of a memory (m ≤ �
 spurious    mixture      m* < θ_m and at least two memories overlap above the chance
                          ceiling (a blend of memories, e.g. the symmetric 3-mixture)
 spurious    far          m* < θ_m otherwise (a spin-glass state), or the agreement with
-                         the cue is below θ_a (the fragment fits no stored memory)
+                         the cue is below θ_a, or the field agreement below θ_f (the
+                         fragment fits no stored memory)
 spurious    ambiguous    the cue margin is below θ_c: the fragment fits several memories
 recalled    clean        everything above holds
 =========== ============ ==========================================================
@@ -43,6 +48,7 @@ patterns.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -97,14 +103,18 @@ class VerdictThresholds:
         θ_a, the least agreement between the settled state and the cue on its known units.
     min_cue_margin : float or None
         θ_c, the least lead of the cue's best memory over the runner-up.
+    min_field_agreement : float or None
+        θ_f, the least agreement on any one known field (used only when ``judge`` is given the
+        field blocks; None means no field check).
     """
 
     recall_overlap: float | None = None
     min_agreement: float | None = None
     min_cue_margin: float | None = None
+    min_field_agreement: float | None = None
 
     def __post_init__(self) -> None:
-        for name in ("recall_overlap", "min_agreement", "min_cue_margin"):
+        for name in ("recall_overlap", "min_agreement", "min_cue_margin", "min_field_agreement"):
             value = getattr(self, name)
             if value is not None:
                 check_float(value, name, low=-1.0, high=2.0)
@@ -119,6 +129,7 @@ class VerdictThresholds:
             "recall_overlap": self.recall_overlap,
             "min_agreement": self.min_agreement,
             "min_cue_margin": self.min_cue_margin,
+            "min_field_agreement": self.min_field_agreement,
         }
 
 
@@ -134,6 +145,7 @@ class Verdict:
     cue_overlap: float
     cue_margin: float
     cue_agreement: float
+    field_agreement: float
     nearest: list[tuple[int, float]] = field(default_factory=list)
     steps: int = 0
     converged: bool = True
@@ -168,6 +180,7 @@ class VerdictBatch:
     cue_overlap: NDArray[np.float64]
     cue_margin: NDArray[np.float64]
     cue_agreement: NDArray[np.float64]
+    field_agreement: NDArray[np.float64]
     nearest: NDArray[np.int64]
     nearest_overlap: NDArray[np.float64]
     steps: NDArray[np.int64]
@@ -188,6 +201,7 @@ class VerdictBatch:
             cue_overlap=float(self.cue_overlap[i]),
             cue_margin=float(self.cue_margin[i]),
             cue_agreement=float(self.cue_agreement[i]),
+            field_agreement=float(self.field_agreement[i]),
             nearest=[
                 (int(j), float(m))
                 for j, m in zip(self.nearest[i], self.nearest_overlap[i], strict=True)
@@ -220,6 +234,7 @@ def judge(
     thresholds: VerdictThresholds | None = None,
     *,
     top_k: int = 3,
+    blocks: Sequence[slice] | None = None,
 ) -> VerdictBatch:
     """Judge settled states against the stored patterns.
 
@@ -234,6 +249,8 @@ def judge(
     thresholds : VerdictThresholds, optional
     top_k : int
         How many nearest memories to list (1 to 100).
+    blocks : sequence of slice, optional
+        The fields' contiguous unit blocks; enables the field agreement check.
 
     Returns
     -------
@@ -273,6 +290,7 @@ def judge(
     cue_ov = (cf @ xf.T) / n_known[:, None].astype(np.float32)
     cue_best, c_best, c_second = _top2(cue_ov)
     agreement = np.einsum("ij,ij->i", sf, cf).astype(np.float64) / n_known
+    field_agr = field_agreement(sf, cf, _check_blocks(blocks, n_units)) if blocks else agreement
 
     if k < n_mem:
         part = np.argpartition(-overlaps, k - 1, axis=1)[:, :k]
@@ -296,6 +314,7 @@ def judge(
         if th.min_cue_margin is not None
         else 3.0 * math.sqrt(2.0) / np.sqrt(n_known)
     )
+    theta_f = th.min_field_agreement if th.min_field_agreement is not None else -np.inf
     n_present = (overlaps >= np.float32(ceiling_state)).sum(axis=1)
 
     verdict: list[str] = []
@@ -310,7 +329,7 @@ def judge(
         elif m_best[i] < theta_m:
             verdict.append("spurious")
             reason.append("mixture" if n_present[i] >= 2 else "far")
-        elif agreement[i] < theta_a[i]:
+        elif agreement[i] < theta_a[i] or field_agr[i] < theta_f:
             verdict.append("spurious")
             reason.append("far")
         elif c_best[i] - c_second[i] < theta_c[i]:
@@ -330,6 +349,7 @@ def judge(
         cue_overlap=c_best,
         cue_margin=c_best - c_second,
         cue_agreement=agreement,
+        field_agreement=np.asarray(field_agr, dtype=np.float64),
         nearest=nearest,
         nearest_overlap=nearest_ov,
         steps=np.asarray(result.steps, dtype=np.int64),
@@ -339,8 +359,44 @@ def judge(
             "recall_overlap": np.full(c.shape[0], theta_m),
             "min_agreement": np.asarray(theta_a, dtype=np.float64),
             "min_cue_margin": np.asarray(theta_c, dtype=np.float64),
+            "min_field_agreement": np.full(c.shape[0], theta_f),
         },
     )
+
+
+def _check_blocks(blocks: Sequence[slice], n_units: int) -> list[slice]:
+    out = []
+    for b in blocks:
+        if not isinstance(b, slice):
+            raise ParameterError(f"blocks must be slices, got {type(b).__name__}")
+        start, stop, step = b.indices(n_units)
+        if step != 1 or stop <= start:
+            raise ParameterError(f"block {b} is not a non-empty contiguous range of units")
+        out.append(slice(start, stop))
+    return out
+
+
+def field_agreement(
+    states: NDArray[np.float32], cues: NDArray[np.float32], blocks: Sequence[slice]
+) -> NDArray[np.float64]:
+    """Least per-block agreement of each state with its cue over the cue's known blocks.
+
+    A cue with no known unit in a block leaves that block out; a cue with no known block at
+    all gets 1.0 (nothing to disagree with).
+
+    >>> import numpy as np
+    >>> s = np.array([[1, 1, 1, 1]], dtype=np.float32)
+    >>> c = np.array([[1, 1, -1, 0]], dtype=np.float32)
+    >>> field_agreement(s, c, [slice(0, 2), slice(2, 4)]).tolist()
+    [-1.0]
+    """
+    out = np.full(states.shape[0], np.inf)
+    for b in blocks:
+        cb = cues[:, b]
+        known = np.count_nonzero(cb, axis=1)
+        agree = np.einsum("ij,ij->i", states[:, b], cb) / np.maximum(known, 1)
+        out = np.where(known > 0, np.minimum(out, agree), out)
+    return np.where(np.isfinite(out), out, 1.0)
 
 
 def with_defaults(

@@ -109,9 +109,10 @@ class TestCalibrate:
             calibrate(collection["rule"], collection["codec"], records, seed=s) for s in range(3)
         ]
         margins = [r.thresholds.min_cue_margin for r in found]
-        # the binding threshold on these confusable records is the cue margin; 300 cues per
-        # seed (1,000 cues) move its chosen quantile by a few hundredths at most
+        fields = [r.thresholds.min_field_agreement for r in found]
+        # 1,000 cues per seed move the chosen quantiles by a few hundredths at most
         assert max(margins) - min(margins) <= 0.08  # type: ignore[type-var,operator]
+        assert max(fields) - min(fields) <= 0.15  # type: ignore[type-var,operator]
         sets = make_cue_sets(records, SCHEMA, kinds=("typo", "drop"), n_per_kind=150, seed=42)
         rows = [
             evaluate(collection["rule"], collection["codec"], sets, r.thresholds) for r in found
@@ -123,7 +124,7 @@ class TestCalibrate:
 
     def test_calibration_meets_its_own_error_budget(self, collection: dict[str, Any]) -> None:
         result = calibrate(collection["rule"], collection["codec"], collection["records"], seed=1)
-        assert result.null_accept_rate <= 0.02
+        assert result.null_accept_rate <= 0.01
         assert result.wrong_accept_rate <= 0.01
         # invented records built to be confusable: most fragments fit several of them
         assert result.positive_accept_rate > 0.1
@@ -173,9 +174,9 @@ class TestCalibrate:
     def test_leave_one_out_statistics_mask_the_own_record(self, collection: dict[str, Any]) -> None:
         patterns = collection["rule"].patterns_
         cues = patterns[:5].astype(np.int8)
-        best, top, _ = cue_statistics(patterns, cues)
+        best, top, _, _ = cue_statistics(patterns, cues)
         assert list(best) == [0, 1, 2, 3, 4] or np.allclose(top, 1.0)
-        best_loo, _top_loo, _ = cue_statistics(patterns, cues, exclude=np.arange(5))
+        best_loo, _, _, _ = cue_statistics(patterns, cues, exclude=np.arange(5))
         assert all(b != i for i, b in enumerate(best_loo))
 
     def test_bad_arguments_raise_engine_errors(self, collection: dict[str, Any]) -> None:
