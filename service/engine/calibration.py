@@ -104,7 +104,7 @@ def calibrate(
     keys: Sequence[str] | None = None,
     *,
     n_cues: int = 1000,
-    null_rate: float = 0.01,
+    null_rate: float = 0.02,
     wrong_rate: float = 0.005,
     seed: int = 0,
 ) -> CalibrationResult:
@@ -165,7 +165,8 @@ def calibrate(
     if candidates_c.size > 200:
         candidates_c = np.quantile(candidates_c, np.linspace(0, 1, 200))
 
-    best: tuple[float, float, float] | None = None  # (correct accepts, θ_a, θ_c)
+    # For each θ_f, the most correct accepts any feasible θ_c gives, and the θ_c that give it.
+    rows: list[tuple[int, float, NDArray[np.float64]]] = []
     eps = 1e-9
     tc = candidates_c[:, None]
     # strict '>' on the margin, and margin > 0, so exact ties are never accepted
@@ -187,14 +188,18 @@ def calibrate(
         if not feasible.any():
             continue
         good = np.where(feasible, n_acc - wrong, -1)
-        k = int(np.flatnonzero(good == good.max())[-1])  # the largest θ_c among the best
-        cand = (float(good[k]), float(ta), float(candidates_c[k]))
-        if best is None or cand[0] > best[0] or (cand[0] == best[0] and cand[1:] > best[1:]):
-            best = cand
-    if best is None:  # nothing separates: accept nothing rather than guess
+        top = int(good.max())
+        rows.append((top, float(ta), candidates_c[good == top]))
+    if not rows:  # nothing separates: accept nothing rather than guess
         theta_a, theta_c = 1.0 + 1e-6, 2.0  # θ_f above any agreement: nothing is recalled
     else:
-        _, theta_a, theta_c = best
+        # Among the thresholds that accept the most positives, take the middle of the flat
+        # region on each axis rather than its edge: no calibration cue lies inside it, so the
+        # middle leaves the most room for new cues on both sides (a max-margin choice).
+        most = max(r[0] for r in rows)
+        tied = [r for r in rows if r[0] == most]
+        _, theta_a, tcs = tied[len(tied) // 2]
+        theta_c = float(np.sort(tcs)[len(tcs) // 2])
     theta_c = max(theta_c, 1e-6)
 
     acc = (p_top >= theta_a) & (p_margin >= theta_c)

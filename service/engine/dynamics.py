@@ -149,10 +149,17 @@ def _settle_sync(
     trace: list[list[float]] | None = None
     if record:
         trace = [[float(e)] for e in rule.energy(state, n_known)]
+    # The confirming step is skipped only where its outcome is proven, and never when the
+    # energy of every step was asked for.
+    dense = rule if isinstance(rule, DenseRule) and trace is None else None
     active = np.arange(n_cues)
     for step in range(limit):
         s = state[active]
-        h = rule.local_fields(s, n_known[active])
+        confirmed = None
+        if dense is not None:
+            h, winner, runner = dense._fields(s, n_known[active])
+        else:
+            h = rule.local_fields(s, n_known[active])
         new = _sign_keep(h, s)
         if clamp:
             k = known[active]
@@ -162,12 +169,21 @@ def _settle_sync(
             for i, e in zip(active, rule.energy(new, n_known[active]), strict=True):
                 trace[i].append(float(e))
         fixed = (new == s).all(axis=1)
+        if dense is not None and step + 1 < limit:
+            confirmed = _dense_confirmed(dense, s, new, winner, runner, n_known[active]) & ~fixed
         two_cycle = ~fixed & (new == prev[active]).all(axis=1) if step > 0 else np.zeros_like(fixed)
         prev[active] = s
         state[active] = new
         converged[active[fixed]] = True
         cycle[active[two_cycle]] = 2
-        active = active[~(fixed | two_cycle)]
+        done = fixed | two_cycle
+        if confirmed is not None:
+            confirmed &= ~two_cycle
+            # the step that would find nothing to change still counts, as in the plain loop
+            steps[active[confirmed]] += 1
+            converged[active[confirmed]] = True
+            done |= confirmed
+        active = active[~done]
         if active.size == 0:
             break
     return SettleResult(
@@ -177,6 +193,33 @@ def _settle_sync(
         cycle_length=cycle,
         energies=None if trace is None else [np.asarray(t) for t in trace],
     )
+
+
+def _dense_confirmed(
+    rule: DenseRule,
+    s: NDArray[np.float32],
+    new: NDArray[np.float32],
+    winner: NDArray[np.intp],
+    runner: NDArray[np.float64],
+    n_known: NDArray[np.int64],
+) -> NDArray[np.bool_]:
+    """States whose next dense step is proven to find nothing to change.
+
+    Where the readout was one-hot and the new state is the winning pattern x_w, the next
+    step's dot products are x_j·x_w = x_j·s + x_j·(x_w − s) ≤ x_j·s + ‖x_w − s‖₁ for every
+    other memory j, while x_w·x_w = N. If that bound still trails N by the one-hot gap, the
+    next readout is x_w alone and its sign is x_w again (with ``clamp`` too, since the new
+    state already is x_w): a fixed point, known without the second product over X.
+    """
+    n_units = s.shape[1]
+    ok = winner >= 0
+    if not ok.any():
+        return ok
+    hits = np.flatnonzero(ok)
+    ok[hits] = (new[hits] == rule._x[winner[hits]]).all(axis=1)
+    distance = np.abs(new - s).sum(axis=1, dtype=np.float64)
+    gap = rule._one_hot_gap(rule._betas(s, n_known))
+    return np.asarray(ok & (runner + distance < n_units - gap))
 
 
 def _settle_async(

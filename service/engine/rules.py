@@ -89,6 +89,21 @@ class MemoryRule:
         if getattr(self, "patterns_", None) is None:
             raise EmptyMemoryError(f"the {self.name} rule has no memories yet; call fit() first")
 
+    def fit(self, patterns: Any) -> Self:
+        """Learn from an (n_memories, n_units) matrix of ±1 values."""
+        raise NotImplementedError
+
+    def add(self, pattern: Any) -> Self:
+        """Store one more pattern without recompiling."""
+        raise NotImplementedError
+
+    def remove(self, index: int) -> Self:
+        """Forget the memory at row ``index`` without recompiling."""
+        self._require_fitted()
+        raise ParameterError(
+            f"the {self.name} rule cannot forget one memory incrementally; fit it again"
+        )
+
     def get_params(self) -> dict[str, Any]:
         """Hyperparameters as passed to the constructor."""
         return {}
@@ -325,6 +340,35 @@ class StorkeyRule(_MatrixRule):
         return _digest(self.patterns_, self._off, self.diagonal_)
 
 
+_TRI_BLOCK = 128
+
+
+def _solve_lower(chol: F64, b: NDArray[np.float64], *, transposed: bool = False) -> F64:
+    """Solve L y = b (or Lᵀ y = b) for lower-triangular L by blocked substitution.
+
+    numpy has no triangular solver, and ``np.linalg.solve`` factors L again in O(P³).
+    Blocks of 128 keep the work at O(P²) per right-hand side, nearly all of it in GEMV/GEMM,
+    with only P / 128 small dense solves.
+    """
+    p = chol.shape[0]
+    y = np.array(b, dtype=np.float64, copy=True)
+    starts = list(range(0, p, _TRI_BLOCK))
+    if transposed:
+        starts.reverse()
+    for lo in starts:
+        hi = min(lo + _TRI_BLOCK, p)
+        if transposed:
+            # rows lo:hi of Lᵀ: the diagonal block transposed, then the already solved tail
+            if hi < p:
+                y[lo:hi] -= chol[hi:, lo:hi].T @ y[hi:]
+            y[lo:hi] = np.linalg.solve(chol[lo:hi, lo:hi].T, y[lo:hi])
+        else:
+            if lo > 0:
+                y[lo:hi] -= chol[lo:hi, :lo] @ y[:lo]
+            y[lo:hi] = np.linalg.solve(chol[lo:hi, lo:hi], y[lo:hi])
+    return y
+
+
 class ProjectionRule(_MatrixRule):
     """Projection (pseudo-inverse) rule, W = Xᵀ (X Xᵀ)⁻¹ X.
 
@@ -380,7 +424,7 @@ class ProjectionRule(_MatrixRule):
             ok = False
         if not ok:
             self._raise_dependent(X)
-        y = np.linalg.solve(chol, xd)  # Y = L⁻¹ X, shape (P, N)
+        y = _solve_lower(chol, xd)  # Y = L⁻¹ X, shape (P, N)
         y32 = y.astype(np.float32)
         full = y32.T @ y32  # the N×N product in float32: the GEMM dominates the compile
         self.patterns_ = X
@@ -428,7 +472,7 @@ class ProjectionRule(_MatrixRule):
         """x minus its projection on the stored patterns, in float64 through the factor."""
         xd = self.patterns_.astype(np.float64)
         g = xd @ x
-        coef = np.linalg.solve(self.cholesky_.T, np.linalg.solve(self.cholesky_, g))
+        coef = _solve_lower(self.cholesky_, _solve_lower(self.cholesky_, g), transposed=True)
         return np.asarray(x - xd.T @ coef)
 
     def add(self, pattern: Any) -> Self:
@@ -451,8 +495,8 @@ class ProjectionRule(_MatrixRule):
         if d2 <= self.tolerance * n:
             # x is in the span, so its coefficients G⁻¹ X x are exact: name only the
             # memories that take part, as fit() does, not every stored one
-            coef = np.linalg.solve(
-                self.cholesky_.T, np.linalg.solve(self.cholesky_, self.patterns_ @ x)
+            coef = _solve_lower(
+                self.cholesky_, _solve_lower(self.cholesky_, self.patterns_ @ x), transposed=True
             )
             involved = tuple(int(k) for k in np.flatnonzero(np.abs(coef) > 1e-8))
             raise DependentMemoryError(
@@ -462,7 +506,7 @@ class ProjectionRule(_MatrixRule):
                 indices=(*involved, p),
             )
         g = self.patterns_.astype(np.float64) @ x
-        l_row = np.linalg.solve(self.cholesky_, g)
+        l_row = _solve_lower(self.cholesky_, g)
         chol = np.zeros((p + 1, p + 1))
         chol[:p, :p] = self.cholesky_
         chol[p, :p] = l_row
@@ -484,7 +528,7 @@ class ProjectionRule(_MatrixRule):
             raise EmptyMemoryError("cannot remove the only memory; a rule needs at least one")
         e = np.zeros(self.n_memories_)
         e[i] = 1.0
-        coef = np.linalg.solve(self.cholesky_.T, np.linalg.solve(self.cholesky_, e))
+        coef = _solve_lower(self.cholesky_, _solve_lower(self.cholesky_, e), transposed=True)
         u = self.patterns_.astype(np.float64).T @ coef  # dual vector: ⟂ to every other memory
         uu = float(u @ u)
         self._w -= (np.multiply.outer(u, u) / uu).astype(np.float32)
@@ -530,6 +574,8 @@ class DenseRule(MemoryRule):
     Large β makes the softmax nearly one-hot, so the readout only touches the memories whose
     softmax weight is above ``readout_tolerance / n_memories``; the weight left out can move a
     local field by at most ``readout_tolerance``. A recall then costs about one pass over X.
+    When the softmax is one-hot within that tolerance, the readout is the winning pattern
+    itself and no exponential is taken at all.
 
     The energy reported is the log-sum-exp energy E = -(1/β') log Σ_μ exp(β' x_μ·s) with
     β' = β / n_known; the sign update never raises it (it maximises the linearisation of a
@@ -605,8 +651,56 @@ class DenseRule(MemoryRule):
 
     def local_fields(self, states: F32, n_known: NDArray[np.int64] | None = None) -> F32:
         """Xᵀ softmax(β' X s), reading only memories with non-negligible weight."""
-        a = self.softmax(states, n_known)
-        return self._readout(a)
+        return self._fields(states, n_known)[0]
+
+    def _one_hot_gap(self, betas: NDArray[np.float32]) -> NDArray[np.float64]:
+        """Dot-product lead past which the best memory alone carries the readout.
+
+        A memory trailing the best by more than this has softmax weight below
+        tolerance / (2 P) whatever the others do (the best one alone puts 1 in the
+        normaliser), so the sparse readout would skip it too, and all of them together move
+        a field by less than the tolerance. The slack of 1e-3 nat covers float32 rounding.
+        """
+        if self.readout_tolerance == 0.0:
+            return np.full(betas.shape, np.inf)
+        nats = math.log(2.0 * self.n_memories_ / self.readout_tolerance) + 1e-3
+        return np.asarray(nats / betas.astype(np.float64))
+
+    def _fields(
+        self, states: F32, n_known: NDArray[np.int64] | None
+    ) -> tuple[F32, NDArray[np.intp], F64]:
+        """Local fields, each state's winning memory (-1 unless one-hot) and runner-up dot.
+
+        A near one-hot softmax is the common case at the default β, and there the readout
+        is the winning pattern itself: two reductions over the dot products replace the
+        exponentials, the normalisation and the gather. Other states take the full path.
+        """
+        self._require_fitted()
+        betas = self._betas(states, n_known)
+        dots = states @ self._x.T  # exact integers in float32
+        n_states, n_mem = dots.shape
+        rows = np.arange(n_states)
+        best = np.asarray(dots.argmax(axis=1))
+        top = dots[rows, best].astype(np.float64)
+        if n_mem > 1:
+            dots[rows, best] = -np.inf
+            runner = dots.max(axis=1).astype(np.float64)
+            dots[rows, best] = top
+        else:
+            runner = np.full(n_states, -np.inf)
+        one_hot = runner < top - self._one_hot_gap(betas)
+        fields = np.empty((n_states, self._x.shape[1]), dtype=np.float32)
+        fields[one_hot] = self._x[best[one_hot]]
+        slow = np.flatnonzero(~one_hot)
+        if slow.size:
+            z = dots if slow.size == n_states else dots[slow]
+            z *= betas[slow][:, None]
+            z -= z.max(axis=1, keepdims=True)
+            np.exp(z, out=z)
+            z /= z.sum(axis=1, keepdims=True)
+            fields[slow] = self._readout(z)
+        winner = np.where(one_hot, best, -1)
+        return fields, winner, runner
 
     def _readout(self, a: F32) -> F32:
         n_states, n_mem = a.shape

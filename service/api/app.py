@@ -1,0 +1,139 @@
+"""The FastAPI application: ``create_app(settings)`` builds it, the lifespan wires it.
+
+Nothing connects at import time. On startup the lifespan checks the database is at the newest
+migration (or applies them, when asked to), then builds the engine, the session factory and the
+one :class:`RecallService` every request shares; on shutdown it disposes of the engine.
+"""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator, Callable
+from contextlib import asynccontextmanager
+from typing import Any
+
+from fastapi import FastAPI
+from fastapi.openapi.utils import get_openapi
+from sqlalchemy.engine import make_url
+from starlette.concurrency import run_in_threadpool
+
+from service.recall.service import RecallService
+from service.settings import Settings
+from service.storage.db import make_engine, make_session_factory
+from service.storage.migrate import current_revision, head_revision, upgrade_to_head
+
+from . import docs
+from .bodies import BodyLimitMiddleware
+from .errors import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_error_handlers
+from .routers import collections, health, memories, problems, recall
+
+__all__ = ["DatabaseNotReady", "create_app"]
+
+DESCRIPTION = (
+    "Content-addressable lookup over partial keys. Store a collection's records as memories; "
+    "send a cue made of whatever fields you know and get back the full record, its overlap "
+    "and a verdict: `recalled`, `spurious` or `unsettled`. The verdict is a statistical signal, "
+    "not proof: records about people need human review before any decision is taken on them. "
+    "Errors are RFC 9457 problem documents; each `type` URI is described at /problems/{slug}."
+)
+
+
+class DatabaseNotReady(RuntimeError):
+    """The database is unreachable or behind the newest migration; the service will not start."""
+
+
+def _safe_url(url: str) -> str:
+    return make_url(url).render_as_string(hide_password=True)
+
+
+def _check_database(url: str, migrate: bool) -> None:
+    if migrate:
+        upgrade_to_head(url)
+        return
+    try:
+        current = current_revision(url)
+    except Exception as exc:
+        raise DatabaseNotReady(f"cannot reach the database at {_safe_url(url)}: {exc}") from exc
+    head = head_revision()
+    if current != head:
+        raise DatabaseNotReady(
+            f"the database at {_safe_url(url)} is at migration {current or 'none (empty)'}, "
+            f"not at the newest one, {head}; run `cuebank migrate` first"
+        )
+
+
+def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        url = settings.resolved_database_url
+        await run_in_threadpool(_check_database, url, migrate)
+        engine = make_engine(url, sqlite_synchronous=settings.sqlite_synchronous)
+        try:
+            app.state.engine = engine
+            app.state.service = RecallService(settings, make_session_factory(engine))
+            yield
+        finally:
+            engine.dispose()
+
+    return lifespan
+
+
+def _problem_media_types(schema: dict[str, Any]) -> dict[str, Any]:
+    """File every error response's content under application/problem+json."""
+    for item in schema.get("paths", {}).values():
+        for op in item.values():
+            if not isinstance(op, dict):
+                continue
+            for status, response in op.get("responses", {}).items():
+                content = response.get("content")
+                if status[:1] not in ("4", "5") or not content or "application/json" not in content:
+                    continue
+                moved = content.pop("application/json")
+                content.setdefault(PROBLEM_MEDIA_TYPE, {}).update(moved)
+    return schema
+
+
+def create_app(settings: Settings, *, migrate: bool = False) -> FastAPI:
+    """Build the application for ``settings``.
+
+    ``migrate=True`` applies pending migrations at startup (the demo and the tests); without it
+    the app refuses to start on a database that is not at the newest migration.
+    """
+    app = FastAPI(
+        title="Cuebank",
+        version="0.1.0",
+        description=DESCRIPTION,
+        lifespan=_lifespan(settings, migrate),
+        docs_url=None,
+        redoc_url=None,
+    )
+    app.state.settings = settings
+    install_error_handlers(app)
+    app.include_router(collections.router)
+    app.include_router(memories.router)
+    app.include_router(recall.router)
+    app.include_router(health.router)
+    app.include_router(problems.router)
+    app.include_router(docs.router)
+    # A body is capped before any route reads it; the last middleware added is the outermost,
+    # so the catch-all for unexpected errors wraps the body limit too.
+    app.add_middleware(
+        BodyLimitMiddleware,
+        max_body=settings.max_body_bytes,
+        max_bulk_body=settings.max_bulk_body_bytes,
+        bulk_path=memories.IMPORT_PATH,
+    )
+    app.add_middleware(UnexpectedErrorMiddleware)
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is None:
+            schema = get_openapi(
+                title=app.title,
+                version=app.version,
+                description=app.description,
+                routes=app.routes,
+            )
+            app.openapi_schema = _problem_media_types(schema)
+        return app.openapi_schema
+
+    app.openapi = openapi  # type: ignore[method-assign]
+    return app

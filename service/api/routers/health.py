@@ -1,0 +1,56 @@
+"""Liveness and readiness probes for process supervisors and load balancers."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter
+from starlette.concurrency import run_in_threadpool
+
+from service.api.deps import SettingsDep
+from service.api.examples import response_examples
+from service.api.schemas import HealthRead, ReadinessRead
+from service.recall.errors import Unavailable
+from service.storage.migrate import current_revision, head_revision
+
+from . import problem_responses
+
+router = APIRouter(tags=["health"])
+
+
+@router.get(
+    "/healthz",
+    response_model=HealthRead,
+    responses={200: response_examples("HealthRead"), **problem_responses()},
+)
+async def healthz() -> HealthRead:
+    """Answer while the process runs; checks nothing else."""
+    return HealthRead()
+
+
+def _readiness(url: str) -> ReadinessRead:
+    try:
+        current = current_revision(url)
+    except Exception:
+        # Any driver error means the same to a probe: not reachable now.
+        return ReadinessRead(ready=False, database=False, migrations_at_head=False)
+    at_head = current == head_revision()
+    return ReadinessRead(ready=at_head, database=True, migrations_at_head=at_head)
+
+
+@router.get(
+    "/readyz",
+    response_model=ReadinessRead,
+    responses={200: response_examples("ReadinessRead"), **problem_responses("unavailable")},
+)
+async def readyz(settings: SettingsDep) -> ReadinessRead:
+    """Answer 200 when the database is reachable and its migrations are at the head."""
+    state = await run_in_threadpool(_readiness, settings.resolved_database_url)
+    if not state.ready:
+        reason = (
+            "the database cannot be reached"
+            if not state.database
+            else "the database is not at the newest migration; run `cuebank migrate`"
+        )
+        raise Unavailable(
+            reason, database=state.database, migrations_at_head=state.migrations_at_head
+        )
+    return state

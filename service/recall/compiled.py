@@ -1,0 +1,115 @@
+"""Compiled memories and their cache.
+
+A :class:`CompiledMemory` is everything a recall needs for one collection at one revision: the
+fitted rule, the codec, the keys and fields of the memories in pattern order, the verdict
+thresholds, and per field the codes of the candidate values used to decode a settled state.
+It is derived data: built deterministically from the memories (same memories ⇒ bit-identical
+weights and the same checksum), so it is cached in memory and rebuilt whenever the revision in
+the database moves past it.
+
+Incremental updates never mutate a compiled memory that a recall may be reading: they build a
+new one (copy-on-write, O(N²) like the update itself) and swap it into the cache.
+"""
+
+from __future__ import annotations
+
+import copy
+import threading
+from collections import OrderedDict
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from service.engine import MemoryRule, VerdictThresholds
+from service.engine.codec import Codec
+
+from .models import Fields
+
+
+@dataclass
+class FieldCandidates:
+    """Distinct stored values of one field and their codes, shape (n_values, units)."""
+
+    values: list[Any]
+    codes: NDArray[np.float32]
+
+
+@dataclass
+class CompiledMemory:
+    collection_id: int
+    revision: int
+    rule: MemoryRule
+    codec: Codec
+    keys: list[str]
+    fields: list[Fields]
+    index: dict[str, int]
+    thresholds: VerdictThresholds
+    calibrated_count: int
+    candidates: dict[str, FieldCandidates]
+    checksum: str
+    report: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def nbytes(self) -> int:
+        cand = sum(c.codes.nbytes for c in self.candidates.values())
+        return int(self.rule.weight_bytes_ + self.rule.patterns_.nbytes + cand)
+
+    def with_rule(self, **changes: Any) -> CompiledMemory:
+        """A shallow copy with the given members replaced."""
+        return replace(self, **changes)
+
+    def copy_rule(self) -> MemoryRule:
+        """A deep copy of the rule, safe to update while recalls read the original."""
+        return copy.deepcopy(self.rule)
+
+
+class CompiledCache:
+    """LRU cache of compiled memories keyed by collection id, bounded in bytes.
+
+    Entries carry their revision; a reader checks it against the database before use. A lock
+    per collection makes concurrent misses compile once.
+    """
+
+    def __init__(self, max_bytes: int) -> None:
+        self.max_bytes = max_bytes
+        self._entries: OrderedDict[int, CompiledMemory] = OrderedDict()
+        self._lock = threading.Lock()
+        self._compile_locks: dict[int, threading.Lock] = {}
+
+    def get(self, collection_id: int) -> CompiledMemory | None:
+        with self._lock:
+            entry = self._entries.get(collection_id)
+            if entry is not None:
+                self._entries.move_to_end(collection_id)
+            return entry
+
+    def put(self, entry: CompiledMemory) -> None:
+        with self._lock:
+            current = self._entries.get(entry.collection_id)
+            if current is not None and current.revision > entry.revision:
+                return  # a newer compile landed first; keep it
+            self._entries[entry.collection_id] = entry
+            self._entries.move_to_end(entry.collection_id)
+            total = sum(e.nbytes for e in self._entries.values())
+            while total > self.max_bytes and len(self._entries) > 1:
+                _, dropped = self._entries.popitem(last=False)
+                total -= dropped.nbytes
+
+    def discard(self, collection_id: int) -> None:
+        with self._lock:
+            self._entries.pop(collection_id, None)
+
+    def compile_lock(self, collection_id: int) -> threading.Lock:
+        with self._lock:
+            return self._compile_locks.setdefault(collection_id, threading.Lock())
+
+    @property
+    def total_bytes(self) -> int:
+        with self._lock:
+            return sum(e.nbytes for e in self._entries.values())
+
+    def __len__(self) -> int:
+        with self._lock:
+            return len(self._entries)

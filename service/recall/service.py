@@ -1,0 +1,895 @@
+"""Use-cases: collections, memories, compile and recall, on top of storage and the engine.
+
+Every method opens its own unit of work (commit on success, rollback on any exception), checks
+the caller's input against the schema and the hard limits, maps engine and storage errors to
+:mod:`service.recall.errors`, and returns the plain data of :mod:`service.recall.models`.
+
+Read-your-writes: a recall reads the collection's revision in the database first and answers
+from a compiled memory of exactly that revision, compiling (or updating incrementally) when the
+cached one is older, so a write acknowledged by any worker is seen by the next recall anywhere.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import secrets
+import time
+from collections.abc import Iterable, Sequence
+from datetime import UTC, date, datetime
+from typing import Any
+
+import numpy as np
+
+from service.engine import (
+    DependentMemoryError,
+    EngineError,
+    ParameterError,
+    RecordError,
+    SchemaError,
+    StorkeyRule,
+    VerdictThresholds,
+    capacity_report,
+    judge,
+    make_rule,
+    settle,
+)
+from service.engine.codec import Codec, Schema
+from service.settings import Settings
+from service.storage.db import SessionFactory, unit_of_work
+from service.storage.errors import DuplicateNameError
+from service.storage.models import Collection
+from service.storage.repositories import (
+    CollectionRepository,
+    CompileReportRepository,
+    MemoryRepository,
+    TeamRepository,
+)
+
+from .compiled import CompiledCache, CompiledMemory, FieldCandidates
+from .errors import (
+    CollectionExists,
+    CollectionNotFound,
+    CueInvalid,
+    CursorInvalid,
+    DependentMemories,
+    EmptyCollection,
+    ImportRejected,
+    LimitExceeded,
+    MemoryNotFound,
+    OptionInvalid,
+    RecordInvalid,
+    SchemaInvalid,
+)
+from .models import (
+    CapacityInfo,
+    CollectionInfo,
+    CollectionPatch,
+    CollectionSpec,
+    CompileInfo,
+    DecodedField,
+    Fields,
+    FieldValue,
+    ImportReport,
+    MemoryInfo,
+    MemoryPage,
+    Neighbour,
+    PutResult,
+    RecalledMemory,
+    RecallOptions,
+    RecallResult,
+    RowError,
+)
+
+__all__ = ["DEFAULT_TEAM", "RecallService"]
+
+DEFAULT_TEAM = "default"
+NAME_RE = re.compile(r"^[a-z0-9][a-z0-9_-]{0,63}$")
+KEY_MAX = 256
+#: Verdict options a collection may set; thresholds override calibration.
+VERDICT_OPTIONS = (
+    "calibrate",
+    "recall_overlap",
+    "min_agreement",
+    "min_cue_margin",
+    "min_field_agreement",
+    "max_steps",
+)
+THRESHOLD_OPTIONS = ("recall_overlap", "min_agreement", "min_cue_margin", "min_field_agreement")
+#: Fewer memories than this are not enough to calibrate thresholds; defaults are used.
+MIN_CALIBRATION_MEMORIES = 8
+
+
+def _now() -> datetime:
+    return datetime.now(UTC)
+
+
+def _check_name(name: str) -> str:
+    if not isinstance(name, str) or not NAME_RE.match(name):
+        raise OptionInvalid(
+            f"collection name {name!r} must be 1 to 64 characters: lower-case letters, digits, "
+            "'-' and '_', starting with a letter or digit",
+            field="name",
+        )
+    return name
+
+
+def check_key(key: str, *, field: str = "key") -> str:
+    """Memory keys: 1 to 256 characters, no control characters."""
+    if not isinstance(key, str) or not key:
+        raise RecordInvalid(f"{field} must be a non-empty string", field=field)
+    if len(key) > KEY_MAX:
+        raise LimitExceeded(
+            f"{field} is {len(key)} characters long, above the limit of {KEY_MAX}",
+            limit="key_length",
+            value=len(key),
+            maximum=KEY_MAX,
+        )
+    if any(ord(ch) < 32 or ord(ch) == 127 for ch in key):
+        raise RecordInvalid(f"{field} {key[:40]!r} contains a control character", field=field)
+    return key
+
+
+def _json_value(value: Any) -> FieldValue:
+    """A normalised codec value as stored and returned in JSON."""
+    if isinstance(value, date):
+        return value.isoformat()
+    if isinstance(value, float) and value.is_integer() and abs(value) < 2**53:
+        return value
+    return value  # type: ignore[no-any-return]
+
+
+class RecallService:
+    """The use-cases of one running service (one per worker process)."""
+
+    def __init__(self, settings: Settings, sessions: SessionFactory) -> None:
+        self.settings = settings
+        self.sessions = sessions
+        self.cache = CompiledCache(settings.cache_bytes)
+
+    # ------------------------------------------------------------------ helpers
+
+    def _team_id(self, session: Any, team: str) -> int:
+        repo = TeamRepository(session)
+        found = repo.get_by_name(team)
+        if found is None:
+            if team != DEFAULT_TEAM:
+                raise CollectionNotFound(f"no collection here for team {team!r}")
+            found = repo.get_or_create_default()
+        return int(found.id)
+
+    def _collection(self, session: Any, team: str, name: str) -> Collection:
+        team_id = self._team_id(session, team)
+        coll = CollectionRepository(session).get(team_id, name)
+        if coll is None:
+            raise CollectionNotFound(f"collection {name!r} does not exist", collection=name)
+        return coll
+
+    def _schema(self, coll: Collection) -> Schema:
+        return Schema.from_dict(coll.schema)
+
+    def _codec(self, coll: Collection) -> Codec:
+        return Codec(self._schema(coll), int(coll.seed))
+
+    def _info(self, session: Any, coll: Collection) -> CollectionInfo:
+        schema = self._schema(coll)
+        return CollectionInfo(
+            name=coll.name,
+            description=coll.description,
+            schema=schema.to_dict(),
+            rule=coll.rule,
+            rule_options=dict(coll.rule_options),
+            verdict_options=dict(coll.verdict_options),
+            seed=int(coll.seed),
+            revision=int(coll.revision),
+            n_memories=MemoryRepository(session).count(coll.id),
+            n_units=schema.n_units,
+            created_at=coll.created_at,
+            updated_at=coll.updated_at,
+        )
+
+    def _check_schema(self, raw: Any) -> Schema:
+        if not isinstance(raw, dict):
+            raise SchemaInvalid("schema must be an object with a 'fields' list", field="schema")
+        fields = raw.get("fields")
+        if isinstance(fields, list) and len(fields) > self.settings.max_fields:
+            raise LimitExceeded(
+                f"schema has {len(fields)} fields, above the limit of {self.settings.max_fields}",
+                limit="max_fields",
+                value=len(fields),
+                maximum=self.settings.max_fields,
+            )
+        try:
+            schema = Schema.from_dict(raw)
+        except SchemaError as exc:
+            raise SchemaInvalid(str(exc), field=exc.field) from None
+        if schema.n_units > self.settings.max_units:
+            raise LimitExceeded(
+                f"schema has {schema.n_units} units in all, above the limit of "
+                f"{self.settings.max_units}",
+                limit="max_units",
+                value=schema.n_units,
+                maximum=self.settings.max_units,
+            )
+        for spec in schema.fields:
+            limit = getattr(spec, "max_length", None)
+            if limit is not None and limit > self.settings.max_text_length:
+                raise LimitExceeded(
+                    f"field {spec.name!r}: max_length {limit} is above the service's text "
+                    f"length limit {self.settings.max_text_length}",
+                    limit="max_text_length",
+                    value=limit,
+                    maximum=self.settings.max_text_length,
+                )
+        return schema
+
+    def _check_rule(self, rule: str, options: dict[str, Any]) -> None:
+        try:
+            make_rule(rule, **options)
+        except ParameterError as exc:
+            raise OptionInvalid(str(exc), field="rule_options" if rule else "rule") from None
+
+    def _check_verdict_options(self, options: dict[str, Any]) -> dict[str, Any]:
+        if not isinstance(options, dict):
+            raise OptionInvalid("verdict_options must be an object", field="verdict_options")
+        unknown = sorted(set(options) - set(VERDICT_OPTIONS))
+        if unknown:
+            raise OptionInvalid(
+                f"verdict_options has no option {', '.join(map(repr, unknown))}; "
+                f"allowed: {', '.join(VERDICT_OPTIONS)}",
+                field="verdict_options",
+            )
+        out = dict(options)
+        if "calibrate" in out and not isinstance(out["calibrate"], bool):
+            raise OptionInvalid(
+                "verdict_options.calibrate must be true or false", field="verdict_options.calibrate"
+            )
+        for name in THRESHOLD_OPTIONS:
+            value = out.get(name)
+            if value is None:
+                continue
+            if (
+                isinstance(value, bool)
+                or not isinstance(value, int | float)
+                or not math.isfinite(value)
+                or not -1.0 <= value <= 2.0
+            ):
+                raise OptionInvalid(
+                    f"verdict_options.{name} must be a number in [-1, 2], got {value!r}",
+                    field=f"verdict_options.{name}",
+                )
+        steps = out.get("max_steps")
+        if steps is not None:
+            self._check_steps(steps, field="verdict_options.max_steps")
+        return out
+
+    def _check_steps(self, steps: Any, *, field: str = "max_steps") -> int:
+        if isinstance(steps, bool) or not isinstance(steps, int):
+            raise OptionInvalid(f"{field} must be an integer, got {steps!r}", field=field)
+        if steps < 1:
+            raise OptionInvalid(f"{field} is {steps}, it must be at least 1", field=field)
+        if steps > self.settings.max_steps:
+            raise LimitExceeded(
+                f"{field} is {steps}, above the limit of {self.settings.max_steps}",
+                limit="max_steps",
+                value=steps,
+                maximum=self.settings.max_steps,
+            )
+        return steps
+
+    def _validate_fields(self, codec: Codec, key: str, fields: Any) -> Fields:
+        """Check a memory's fields against the schema; return them normalised for storage."""
+        if not isinstance(fields, dict):
+            raise RecordInvalid("fields must be an object of field names to values", field="fields")
+        try:
+            codec.encode_record(fields, key=key)
+            out: Fields = {}
+            for spec in codec.schema.fields:
+                raw = fields.get(spec.name)
+                self._check_text_length(spec.name, raw)
+                out[spec.name] = (
+                    _json_value(codec.normalise(spec.name, raw)) if raw is not None else None
+                )
+        except RecordError as exc:
+            raise RecordInvalid(str(exc), field=exc.field) from None
+        # keep the caller's spelling for text and category (normalisation is for matching)
+        for name, value in fields.items():
+            if isinstance(value, str) and codec.schema.field(name).kind in ("text", "category"):
+                out[name] = value
+        return out
+
+    def _check_text_length(self, name: str, value: Any) -> None:
+        if isinstance(value, str) and len(value) > self.settings.max_text_length:
+            raise LimitExceeded(
+                f"field {name!r} is {len(value)} characters long, above the limit of "
+                f"{self.settings.max_text_length}",
+                limit="max_text_length",
+                value=len(value),
+                maximum=self.settings.max_text_length,
+            )
+
+    # ------------------------------------------------------------------ collections
+
+    def create_collection(self, team: str, spec: CollectionSpec) -> CollectionInfo:
+        """Create a collection; 409 if the team already has one by that name."""
+        _check_name(spec.name)
+        schema = self._check_schema(spec.schema)
+        self._check_rule(spec.rule, dict(spec.rule_options))
+        verdict = self._check_verdict_options(dict(spec.verdict_options))
+        if spec.seed is not None and (
+            isinstance(spec.seed, bool)
+            or not isinstance(spec.seed, int)
+            or not 0 <= spec.seed < 2**63
+        ):
+            raise OptionInvalid("seed must be an integer in [0, 2^63)", field="seed")
+        seed = spec.seed if spec.seed is not None else secrets.randbelow(2**62)
+        if len(spec.description) > 2000:
+            raise LimitExceeded(
+                f"description is {len(spec.description)} characters, above the limit of 2000",
+                limit="description_length",
+                value=len(spec.description),
+                maximum=2000,
+            )
+        with unit_of_work(self.sessions, write=True) as session:
+            team_id = self._team_id(session, team)
+            try:
+                coll = CollectionRepository(session).create(
+                    team_id,
+                    spec.name,
+                    schema=schema.to_dict(),
+                    rule=spec.rule,
+                    rule_options=dict(spec.rule_options),
+                    verdict_options=verdict,
+                    seed=seed,
+                    description=spec.description,
+                )
+            except DuplicateNameError:
+                raise CollectionExists(
+                    f"collection {spec.name!r} already exists", collection=spec.name
+                ) from None
+            session.flush()
+            return self._info(session, coll)
+
+    def list_collections(self, team: str) -> list[CollectionInfo]:
+        with unit_of_work(self.sessions, write=False) as session:
+            team_id = self._team_id(session, team)
+            return [self._info(session, c) for c in CollectionRepository(session).list(team_id)]
+
+    def get_collection(self, team: str, name: str) -> CollectionInfo:
+        with unit_of_work(self.sessions, write=False) as session:
+            return self._info(session, self._collection(session, team, name))
+
+    def update_collection(self, team: str, name: str, patch: CollectionPatch) -> CollectionInfo:
+        with unit_of_work(self.sessions, write=True) as session:
+            coll = self._collection(session, team, name)
+            rule = patch.rule if patch.rule is not None else coll.rule
+            options = (
+                patch.rule_options
+                if patch.rule_options is not None
+                else (coll.rule_options if patch.rule is None else {})
+            )
+            self._check_rule(rule, dict(options))
+            verdict = (
+                self._check_verdict_options(dict(patch.verdict_options))
+                if patch.verdict_options is not None
+                else None
+            )
+            if patch.description is not None and len(patch.description) > 2000:
+                raise LimitExceeded(
+                    f"description is {len(patch.description)} characters, above the limit of 2000",
+                    limit="description_length",
+                    value=len(patch.description),
+                    maximum=2000,
+                )
+            CollectionRepository(session).update(
+                coll,
+                description=patch.description,
+                rule=patch.rule,
+                rule_options=dict(options)
+                if (patch.rule or patch.rule_options is not None)
+                else None,
+                verdict_options=verdict,
+            )
+            session.flush()
+            session.refresh(coll)
+            return self._info(session, coll)
+
+    def delete_collection(self, team: str, name: str) -> None:
+        with unit_of_work(self.sessions, write=True) as session:
+            coll = self._collection(session, team, name)
+            CollectionRepository(session).delete(coll.id)
+            self.cache.discard(coll.id)
+
+    # ------------------------------------------------------------------ memories
+
+    def put_memory(self, team: str, name: str, key: str, fields: Any) -> PutResult:
+        """Create or replace the memory ``key``; returns the collection's new revision."""
+        check_key(key)
+        with unit_of_work(self.sessions, write=True) as session:
+            coll = self._collection(session, team, name)
+            codec = self._codec(coll)
+            clean = self._validate_fields(codec, key, fields)
+            memories = MemoryRepository(session)
+            existing = memories.get(coll.id, key)
+            if existing is None and memories.count(coll.id) >= self.settings.max_memories:
+                raise LimitExceeded(
+                    f"collection {name!r} holds {self.settings.max_memories} memories, the "
+                    "limit; delete some or raise max_memories",
+                    limit="max_memories",
+                    value=self.settings.max_memories + 1,
+                    maximum=self.settings.max_memories,
+                )
+            created = memories.put(coll.id, key, clean)
+            revision = CollectionRepository(session).bump_revision(coll.id)
+            stored = memories.get(coll.id, key)
+            assert stored is not None
+            info = MemoryInfo(key, dict(stored.fields), stored.created_at, stored.updated_at)
+            coll_id = coll.id
+        self._after_write(coll_id, revision, [(key, clean)], [])
+        return PutResult(memory=info, created=created, revision=revision)
+
+    def get_memory(self, team: str, name: str, key: str) -> MemoryInfo:
+        with unit_of_work(self.sessions, write=False) as session:
+            coll = self._collection(session, team, name)
+            mem = MemoryRepository(session).get(coll.id, key)
+            if mem is None:
+                raise MemoryNotFound(f"memory {key!r} does not exist in {name!r}", key=key)
+            return MemoryInfo(mem.key, dict(mem.fields), mem.created_at, mem.updated_at)
+
+    def delete_memory(self, team: str, name: str, key: str) -> int:
+        """Delete a memory; returns the collection's new revision."""
+        with unit_of_work(self.sessions, write=True) as session:
+            coll = self._collection(session, team, name)
+            if not MemoryRepository(session).delete(coll.id, key):
+                raise MemoryNotFound(f"memory {key!r} does not exist in {name!r}", key=key)
+            revision = CollectionRepository(session).bump_revision(coll.id)
+            coll_id = coll.id
+        self._after_write(coll_id, revision, [], [key])
+        return revision
+
+    def list_memories(
+        self, team: str, name: str, cursor: str | None, limit: int | None
+    ) -> MemoryPage:
+        size = self.settings.default_page_size if limit is None else limit
+        if isinstance(size, bool) or not isinstance(size, int) or size < 1:
+            raise OptionInvalid(f"limit must be a positive integer, got {limit!r}", field="limit")
+        if size > self.settings.max_page_size:
+            raise LimitExceeded(
+                f"limit is {size}, above the page size limit of {self.settings.max_page_size}",
+                limit="max_page_size",
+                value=size,
+                maximum=self.settings.max_page_size,
+            )
+        after = decode_cursor(cursor) if cursor else None
+        with unit_of_work(self.sessions, write=False) as session:
+            coll = self._collection(session, team, name)
+            page = MemoryRepository(session).page(coll.id, after, size)
+            items = [
+                MemoryInfo(m.key, dict(m.fields), m.created_at, m.updated_at) for m in page.items
+            ]
+            nxt = encode_cursor(page.next_after) if page.next_after is not None else None
+            return MemoryPage(items=items, next_cursor=nxt)
+
+    def import_memories(
+        self,
+        team: str,
+        name: str,
+        rows: Iterable[tuple[int, str | None, Any] | RowError],
+        *,
+        skip_bad: bool = False,
+    ) -> ImportReport:
+        """Store many memories in one transaction.
+
+        ``rows`` holds ``(row_number, key, fields)`` tuples or the :class:`RowError` a parser
+        found. Unless ``skip_bad``, any bad row rejects the whole import and nothing is written.
+        """
+        with unit_of_work(self.sessions, write=True) as session:
+            coll = self._collection(session, team, name)
+            codec = self._codec(coll)
+            good: dict[str, Fields] = {}
+            errors: list[RowError] = []
+            received = 0
+            for item in rows:
+                received += 1
+                if isinstance(item, RowError):
+                    errors.append(item)
+                    continue
+                row_no, key, fields = item
+                try:
+                    if key is None:
+                        raise RecordInvalid("the row has no key", field="key")
+                    check_key(key)
+                    good[key] = self._validate_fields(codec, key, fields)
+                except (RecordInvalid, LimitExceeded) as exc:
+                    errors.append(
+                        RowError(
+                            row_no,
+                            key,
+                            exc.extra.get("field")
+                            if isinstance(exc, RecordInvalid)
+                            else exc.extra.get("limit"),
+                            str(exc),
+                        )
+                    )
+                if len(errors) > 1000 and not skip_bad:
+                    break
+            if errors and not skip_bad:
+                raise ImportRejected(
+                    f"{len(errors)} of {received} rows are bad; nothing was written "
+                    "(send skip_bad=true to store the good rows)",
+                    errors=[e.__dict__ for e in errors[:1000]],
+                )
+            memories = MemoryRepository(session)
+            existing = memories.keys_existing(coll.id, list(good))
+            total = memories.count(coll.id) + len(set(good) - existing)
+            if total > self.settings.max_memories:
+                raise LimitExceeded(
+                    f"the import would bring {name!r} to {total} memories, above the limit of "
+                    f"{self.settings.max_memories}",
+                    limit="max_memories",
+                    value=total,
+                    maximum=self.settings.max_memories,
+                )
+            counts = memories.bulk_put(coll.id, list(good.items())) if good else None
+            revision = (
+                CollectionRepository(session).bump_revision(coll.id) if good else coll.revision
+            )
+            coll_id = coll.id
+        if good:
+            self._after_write(coll_id, int(revision), list(good.items()), [])
+        return ImportReport(
+            received=received,
+            written=len(good),
+            created=counts.created if counts else 0,
+            replaced=counts.replaced if counts else 0,
+            skipped=len(errors),
+            errors=errors,
+            revision=int(revision),
+        )
+
+    # ------------------------------------------------------------------ compile
+
+    def _compile(self, session: Any, coll: Collection) -> CompiledMemory:
+        """Build the compiled memory of ``coll`` at its current revision from the database."""
+
+        started = time.perf_counter()
+        codec = self._codec(coll)
+        rows = MemoryRepository(session).all_ordered(coll.id)
+        if not rows:
+            raise EmptyCollection(
+                f"collection {coll.name!r} has no memories yet", collection=coll.name
+            )
+        keys = [k for k, _ in rows]
+        fields = [dict(f) for _, f in rows]
+        patterns = codec.encode_records(fields, keys=keys)
+        rule = make_rule(coll.rule, **coll.rule_options)
+        try:
+            rule.fit(patterns)
+        except DependentMemoryError as exc:
+            named = [keys[i] for i in exc.indices if 0 <= i < len(keys)]
+            raise DependentMemories(
+                f"the {coll.rule} rule cannot store these memories together: "
+                f"{', '.join(map(repr, named[:20]))} are duplicates or linearly dependent "
+                "(delete one, or use the dense rule)",
+                keys=named[:100],
+            ) from None
+        options = dict(coll.verdict_options)
+        thresholds, calibration = self._thresholds(options, rule, codec, fields, keys, coll.seed)
+        candidates = self._candidates(codec, fields)
+        report = capacity_report(rule).to_dict()
+        compiled = CompiledMemory(
+            collection_id=coll.id,
+            revision=int(coll.revision),
+            rule=rule,
+            codec=codec,
+            keys=keys,
+            fields=fields,
+            index={k: i for i, k in enumerate(keys)},
+            thresholds=thresholds,
+            calibrated_count=len(keys),
+            candidates=candidates,
+            checksum=rule.checksum(),
+            report={
+                "capacity": report,
+                "thresholds": thresholds.to_dict(),
+                "calibration": calibration,
+                "duration_ms": (time.perf_counter() - started) * 1000.0,
+                "compiled_at": _now().isoformat(),
+            },
+        )
+        return compiled
+
+    def _thresholds(
+        self,
+        options: dict[str, Any],
+        rule: Any,
+        codec: Codec,
+        fields: list[Fields],
+        keys: list[str],
+        seed: int,
+    ) -> tuple[VerdictThresholds, dict[str, Any]]:
+        from service.engine.calibration import calibrate
+
+        calibration: dict[str, Any] = {}
+        base = VerdictThresholds()
+        if options.get("calibrate", True) and len(keys) >= MIN_CALIBRATION_MEMORIES:
+            result = calibrate(rule, codec, fields, keys, seed=int(seed) % 2**32)
+            base = result.thresholds
+            calibration = result.to_dict()
+        overrides = {k: float(options[k]) for k in THRESHOLD_OPTIONS if options.get(k) is not None}
+        if overrides:
+            base = VerdictThresholds(**{**base.to_dict(), **overrides})
+        return base, calibration
+
+    def _candidates(self, codec: Codec, fields: list[Fields]) -> dict[str, FieldCandidates]:
+        out: dict[str, FieldCandidates] = {}
+        for spec in codec.schema.fields:
+            seen: dict[Any, FieldValue] = {}
+            for rec in fields:
+                raw = rec.get(spec.name)
+                norm = codec.normalise(spec.name, raw) if raw is not None else None
+                if norm not in seen:
+                    seen[norm] = raw if spec.kind in ("text", "category") else _json_value(norm)
+            values = list(seen.values())
+            codes = np.stack([codec.encode_value(spec.name, v) for v in values]).astype(np.float32)
+            out[spec.name] = FieldCandidates(values=values, codes=codes)
+        return out
+
+    def _compiled(self, session: Any, coll: Collection) -> CompiledMemory:
+        """The compiled memory at the collection's revision, from cache or built now."""
+        cached = self.cache.get(coll.id)
+        if cached is not None and cached.revision == coll.revision:
+            return cached
+        with self.cache.compile_lock(coll.id):
+            cached = self.cache.get(coll.id)
+            if cached is not None and cached.revision == coll.revision:
+                return cached
+            compiled = self._compile(session, coll)
+            self.cache.put(compiled)
+            return compiled
+
+    def _after_write(
+        self,
+        collection_id: int,
+        revision: int,
+        upserts: Sequence[tuple[str, Fields]],
+        deletes: Sequence[str],
+    ) -> None:
+        """Bring this worker's cached memory to ``revision`` incrementally, or drop it."""
+        cached = self.cache.get(collection_id)
+        if cached is None:
+            return
+        if cached.revision != revision - 1 or (isinstance(cached.rule, StorkeyRule) and deletes):
+            self.cache.discard(collection_id)
+            return
+        grown = len(cached.keys) + len(upserts)
+        # thresholds were calibrated on the memories of the time; recompile when far off
+        if abs(grown - cached.calibrated_count) > 0.2 * max(cached.calibrated_count, 1) or (
+            len(upserts) + len(deletes) > 64
+        ):
+            self.cache.discard(collection_id)
+            return
+        try:
+            rule = cached.copy_rule()
+            keys = list(cached.keys)
+            fields = list(cached.fields)
+            for key in deletes:
+                i = keys.index(key) if key in keys else -1
+                if i >= 0:
+                    rule.remove(i)
+                    del keys[i]
+                    del fields[i]
+            for key, rec in upserts:
+                if key in keys:
+                    if isinstance(rule, StorkeyRule):
+                        raise NotImplementedError
+                    i = keys.index(key)
+                    rule.remove(i)
+                    del keys[i]
+                    del fields[i]
+                rule.add(cached.codec.encode_record(rec, key=key))
+                keys.append(key)
+                fields.append(dict(rec))
+        except (NotImplementedError, EngineError):
+            self.cache.discard(collection_id)
+            return
+        updated = cached.with_rule(
+            revision=revision,
+            rule=rule,
+            keys=keys,
+            fields=fields,
+            index={k: i for i, k in enumerate(keys)},
+            candidates=self._candidates(cached.codec, fields),
+            checksum=rule.checksum(),
+        )
+        self.cache.put(updated)
+
+    def compile(self, team: str, name: str) -> CompileInfo:
+        """Compile now (always a full compile), store and return the compile report."""
+        with unit_of_work(self.sessions, write=True) as session:
+            coll = self._collection(session, team, name)
+            with self.cache.compile_lock(coll.id):
+                compiled = self._compile(session, coll)
+                self.cache.put(compiled)
+            return self._store_report(session, coll, compiled)
+
+    def _store_report(
+        self, session: Any, coll: Collection, compiled: CompiledMemory
+    ) -> CompileInfo:
+        rep = compiled.report
+        CompileReportRepository(session).add(
+            coll.id,
+            revision=compiled.revision,
+            rule=coll.rule,
+            n_memories=len(compiled.keys),
+            n_units=compiled.codec.schema.n_units,
+            weights_checksum=compiled.checksum,
+            report=rep,
+            duration_ms=float(rep.get("duration_ms", 0.0)),
+        )
+        return CompileInfo(
+            revision=compiled.revision,
+            rule=coll.rule,
+            n_memories=len(compiled.keys),
+            n_units=compiled.codec.schema.n_units,
+            checksum=compiled.checksum,
+            duration_ms=float(rep.get("duration_ms", 0.0)),
+            thresholds=dict(rep.get("thresholds", {})),
+            capacity=dict(rep.get("capacity", {})),
+            compiled_at=datetime.fromisoformat(str(rep["compiled_at"])),
+        )
+
+    def capacity(self, team: str, name: str) -> CapacityInfo:
+        with unit_of_work(self.sessions, write=False) as session:
+            coll = self._collection(session, team, name)
+            compiled = self._compiled(session, coll)
+            report = capacity_report(compiled.rule).to_dict()
+            report["checksum"] = compiled.checksum
+            report["thresholds"] = compiled.thresholds.to_dict()
+            return CapacityInfo(revision=compiled.revision, report=report)
+
+    # ------------------------------------------------------------------ recall
+
+    def recall(
+        self, team: str, name: str, cues: Sequence[Any], options: RecallOptions
+    ) -> list[RecallResult]:
+        """Settle each cue and judge where it landed; results in the order of the cues."""
+        if not cues:
+            raise CueInvalid("at least one cue is needed", field="cues")
+        if len(cues) > self.settings.max_batch:
+            raise LimitExceeded(
+                f"{len(cues)} cues in one batch, above the limit of {self.settings.max_batch}",
+                limit="max_batch",
+                value=len(cues),
+                maximum=self.settings.max_batch,
+                status=413,
+            )
+        if options.mode not in ("sync", "async"):
+            raise OptionInvalid(f"mode must be sync or async, got {options.mode!r}", field="mode")
+        if (
+            isinstance(options.top_k, bool)
+            or not isinstance(options.top_k, int)
+            or not (1 <= options.top_k <= 100)
+        ):
+            raise OptionInvalid(
+                f"top_k must be an integer from 1 to 100, got {options.top_k!r}", field="top_k"
+            )
+        with unit_of_work(self.sessions, write=False) as session:
+            coll = self._collection(session, team, name)
+            default_steps = coll.verdict_options.get("max_steps")
+            steps = self._check_steps(
+                options.max_steps
+                if options.max_steps is not None
+                else (default_steps or min(100, self.settings.max_steps))
+            )
+            compiled = self._compiled(session, coll)
+        codec = compiled.codec
+        encoded = []
+        for i, cue in enumerate(cues):
+            if not isinstance(cue, dict):
+                raise CueInvalid(
+                    f"cue {i} must be an object of field names to values", field=f"cues[{i}]", cue=i
+                )
+            for fname, value in cue.items():
+                self._check_text_length(fname, value)
+            try:
+                encoded.append(codec.encode_cue(cue))
+            except RecordError as exc:
+                where = f"cue {i}: " if len(cues) > 1 else ""
+                raise CueInvalid(f"{where}{exc}", field=exc.field, cue=i) from None
+        cue_matrix = np.stack(encoded)
+        result = settle(
+            compiled.rule,
+            cue_matrix,
+            mode=options.mode,
+            clamp=options.clamp,
+            max_steps=steps,
+            record_energy=options.include_energy,
+        )
+        verdicts = judge(
+            compiled.rule.patterns_,
+            cue_matrix,
+            result,
+            compiled.thresholds,
+            top_k=options.top_k,
+            blocks=list(codec.schema.slices.values()),
+        )
+        decoded = self._decode(compiled, result.states)
+        out: list[RecallResult] = []
+        for i in range(len(cues)):
+            v = verdicts[i]
+            best_key = compiled.keys[v.best]
+            memory = None
+            if v.verdict == "recalled":
+                memory = RecalledMemory(best_key, dict(compiled.fields[v.best]))
+            out.append(
+                RecallResult(
+                    verdict=v.verdict,  # type: ignore[arg-type]
+                    reason=v.reason,
+                    memory=memory,
+                    best_key=best_key,
+                    overlap=round(v.overlap, 6),
+                    margin=round(v.margin, 6),
+                    cue_overlap=round(v.cue_overlap, 6),
+                    cue_margin=round(v.cue_margin, 6),
+                    cue_agreement=round(v.cue_agreement, 6),
+                    field_agreement=round(v.field_agreement, 6),
+                    fields=decoded[i],
+                    nearest=[Neighbour(compiled.keys[j], round(m, 6)) for j, m in v.nearest],
+                    steps=v.steps,
+                    converged=v.converged,
+                    cycle_length=v.cycle_length,
+                    revision=compiled.revision,
+                    energy=(
+                        [float(e) for e in result.energies[i]]
+                        if result.energies is not None
+                        else None
+                    ),
+                )
+            )
+        return out
+
+    def _decode(
+        self, compiled: CompiledMemory, states: np.ndarray
+    ) -> list[dict[str, DecodedField]]:
+        slices = compiled.codec.schema.slices
+        per_cue: list[dict[str, DecodedField]] = [{} for _ in range(states.shape[0])]
+        sf = states.astype(np.float32)
+        for name, cand in compiled.candidates.items():
+            block = sf[:, slices[name]]
+            d = block.shape[1]
+            scores = block @ cand.codes.T / np.float32(d)  # (B, n_values)
+            best = np.argmax(scores, axis=1)
+            for i, j in enumerate(best):
+                m = float(scores[i, j])
+                per_cue[i][name] = DecodedField(
+                    value=cand.values[int(j)], score=round(m, 6), z=round(math.sqrt(d) * m, 3)
+                )
+        return per_cue
+
+
+# ---------------------------------------------------------------------- cursors
+
+
+def encode_cursor(after_key: str) -> str:
+    """An opaque page cursor: the last key of the page, URL-safe base64 with a version tag."""
+    import base64
+
+    raw = b"k1:" + after_key.encode("utf-8")
+    return base64.urlsafe_b64encode(raw).decode("ascii").rstrip("=")
+
+
+def decode_cursor(cursor: str) -> str:
+    import base64
+    import binascii
+
+    try:
+        padded = cursor + "=" * (-len(cursor) % 4)
+        raw = base64.urlsafe_b64decode(padded.encode("ascii"))
+        if not raw.startswith(b"k1:"):
+            raise ValueError("unknown cursor version")
+        return raw[3:].decode("utf-8")
+    except (ValueError, binascii.Error, UnicodeError):
+        raise CursorInvalid(
+            f"cursor {cursor[:40]!r} is not a cursor this service issued", field="cursor"
+        ) from None
