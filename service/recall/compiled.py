@@ -30,10 +30,16 @@ from .models import Fields
 
 @dataclass
 class FieldCandidates:
-    """Distinct stored values of one field and their codes, shape (n_values, units)."""
+    """Distinct stored values of one field and their codes, shape (n_values, units).
+
+    ``of_memory[i]`` is the index in ``values`` of memory i's value, used to break ties in
+    favour of the value the nearest memory really holds (values within one tile of each other
+    can share a code).
+    """
 
     values: list[Any]
     codes: NDArray[np.float32]
+    of_memory: NDArray[np.int64]
 
 
 @dataclass

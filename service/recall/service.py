@@ -591,6 +591,7 @@ class RecallService:
             checksum=rule.checksum(),
             report={
                 "capacity": report,
+                "revision": int(coll.revision),
                 "thresholds": thresholds.to_dict(),
                 "calibration": calibration,
                 "duration_ms": (time.perf_counter() - started) * 1000.0,
@@ -624,15 +625,18 @@ class RecallService:
     def _candidates(self, codec: Codec, fields: list[Fields]) -> dict[str, FieldCandidates]:
         out: dict[str, FieldCandidates] = {}
         for spec in codec.schema.fields:
-            seen: dict[Any, FieldValue] = {}
-            for rec in fields:
+            seen: dict[Any, int] = {}
+            values: list[FieldValue] = []
+            of_memory = np.empty(len(fields), dtype=np.int64)
+            for i, rec in enumerate(fields):
                 raw = rec.get(spec.name)
                 norm = codec.normalise(spec.name, raw) if raw is not None else None
                 if norm not in seen:
-                    seen[norm] = raw if spec.kind in ("text", "category") else _json_value(norm)
-            values = list(seen.values())
+                    seen[norm] = len(values)
+                    values.append(raw if spec.kind in ("text", "category") else _json_value(norm))
+                of_memory[i] = seen[norm]
             codes = np.stack([codec.encode_value(spec.name, v) for v in values]).astype(np.float32)
-            out[spec.name] = FieldCandidates(values=values, codes=codes)
+            out[spec.name] = FieldCandidates(values=values, codes=codes, of_memory=of_memory)
         return out
 
     def _compiled(self, session: Any, coll: Collection) -> CompiledMemory:
@@ -743,7 +747,11 @@ class RecallService:
         with unit_of_work(self.sessions, write=False) as session:
             coll = self._collection(session, team, name)
             compiled = self._compiled(session, coll)
-            report = capacity_report(compiled.rule).to_dict()
+            cached = compiled.report.get("capacity")
+            if cached is not None and compiled.report.get("revision") == compiled.revision:
+                report = dict(cached)
+            else:  # updated incrementally since the last full compile
+                report = capacity_report(compiled.rule).to_dict()
             report["checksum"] = compiled.checksum
             report["thresholds"] = compiled.thresholds.to_dict()
             return CapacityInfo(revision=compiled.revision, report=report)
@@ -814,7 +822,7 @@ class RecallService:
             top_k=options.top_k,
             blocks=list(codec.schema.slices.values()),
         )
-        decoded = self._decode(compiled, result.states)
+        decoded = self._decode(compiled, result.states, verdicts.best)
         out: list[RecallResult] = []
         for i in range(len(cues)):
             v = verdicts[i]
@@ -850,16 +858,20 @@ class RecallService:
         return out
 
     def _decode(
-        self, compiled: CompiledMemory, states: np.ndarray
+        self, compiled: CompiledMemory, states: np.ndarray, nearest: np.ndarray
     ) -> list[dict[str, DecodedField]]:
         slices = compiled.codec.schema.slices
         per_cue: list[dict[str, DecodedField]] = [{} for _ in range(states.shape[0])]
         sf = states.astype(np.float32)
+        rows = np.arange(states.shape[0])
         for name, cand in compiled.candidates.items():
             block = sf[:, slices[name]]
             d = block.shape[1]
             scores = block @ cand.codes.T / np.float32(d)  # (B, n_values)
-            best = np.argmax(scores, axis=1)
+            # on equal scores, the nearest memory's own value wins
+            ranked = scores.astype(np.float64)
+            ranked[rows, cand.of_memory[nearest]] += 1e-9
+            best = np.argmax(ranked, axis=1)
             for i, j in enumerate(best):
                 m = float(scores[i, j])
                 per_cue[i][name] = DecodedField(
