@@ -17,7 +17,7 @@ from service.demo import DEMO_SIZE, demo_records, demo_schema, smudge, typo
 from service.engine.codec import Codec, Schema
 from service.storage.migrate import head_revision
 
-COMMANDS = ("serve", "migrate", "demo")
+COMMANDS = ("serve", "migrate", "demo", "bench")
 
 
 @pytest.fixture(autouse=True)

@@ -343,7 +343,9 @@ class StorkeyRule(_MatrixRule):
 _TRI_BLOCK = 128
 
 
-def _solve_lower(chol: F64, b: NDArray[np.float64], *, transposed: bool = False) -> F64:
+def _solve_lower(
+    chol: NDArray[np.floating[Any]], b: NDArray[Any], *, transposed: bool = False
+) -> F64:
     """Solve L y = b (or Lᵀ y = b) for lower-triangular L by blocked substitution.
 
     numpy has no triangular solver, and ``np.linalg.solve`` factors L again in O(P³).
