@@ -135,7 +135,7 @@ def evaluate(
             part = encoded[start : start + size]
             res = settle(rule, part, mode=mode, max_steps=max_steps)
             blocks = list(codec.schema.slices.values())
-            v = judge(rule.patterns_, part, res, thresholds, top_k=1, blocks=blocks)
+            v = judge(rule, part, res, thresholds, top_k=1, blocks=blocks)
             best[start : start + size] = v.best
             verdicts.extend(v.verdict)
         nn = nearest_neighbour(rule.patterns_, encoded)

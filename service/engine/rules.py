@@ -85,6 +85,17 @@ class MemoryRule:
         self._require_fitted()
         return int(self.patterns_.shape[0])
 
+    @property
+    def patterns_f32_(self) -> F32:
+        """``patterns_`` as float32, for products; cached until the patterns change."""
+        self._require_fitted()
+        cached = getattr(self, "_pf32", None)
+        if cached is None or getattr(self, "_pf32_src", None) is not self.patterns_:
+            cached = self.patterns_.astype(np.float32)
+            self._pf32 = cached
+            self._pf32_src = self.patterns_
+        return cached
+
     def _require_fitted(self) -> None:
         if getattr(self, "patterns_", None) is None:
             raise EmptyMemoryError(f"the {self.name} rule has no memories yet; call fit() first")
@@ -609,6 +620,11 @@ class DenseRule(MemoryRule):
         self._x = X.astype(np.float32)
         self.beta_ = self.beta if self.beta is not None else default_beta(X.shape[1])
         return self
+
+    @property
+    def patterns_f32_(self) -> F32:
+        self._require_fitted()
+        return self._x
 
     def add(self, pattern: Any) -> Self:
         """Store one more pattern (O(N))."""

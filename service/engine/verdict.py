@@ -58,6 +58,7 @@ from numpy.typing import NDArray
 from ._checks import as_cues, as_patterns, check_float, check_int
 from .dynamics import SettleResult
 from .errors import ParameterError, ShapeError
+from .rules import MemoryRule, check_fitted_rule
 
 __all__ = [
     "REASONS",
@@ -238,6 +239,10 @@ def judge(
 ) -> VerdictBatch:
     """Judge settled states against the stored patterns.
 
+    ``patterns`` may also be a fitted :class:`~service.engine.rules.MemoryRule`: its patterns
+    were checked when it was fitted, so they are not checked again (on a large collection that
+    check costs more than the verdict itself).
+
     Parameters
     ----------
     patterns : array_like, shape (n_memories, n_units)
@@ -256,8 +261,12 @@ def judge(
     -------
     VerdictBatch
     """
-    X = as_patterns(patterns, "patterns")
-    n_mem, n_units = X.shape
+    if isinstance(patterns, MemoryRule):
+        check_fitted_rule(patterns)
+        xf = patterns.patterns_f32_
+    else:
+        xf = as_patterns(patterns, "patterns").astype(np.float32)
+    n_mem, n_units = xf.shape
     c = as_cues(cues, "cues", n_units=n_units)
     if not isinstance(result, SettleResult):
         raise ParameterError(f"result must be what settle() returned, got {type(result).__name__}")
@@ -279,7 +288,6 @@ def judge(
     k = min(check_int(top_k, "top_k", low=1, high=100), n_mem)
     th = thresholds or VerdictThresholds()
 
-    xf = X.astype(np.float32)
     sf = states.astype(np.float32)
     cf = c.astype(np.float32)
     n_known = np.maximum(np.count_nonzero(c, axis=1), 1).astype(np.float64)

@@ -153,3 +153,29 @@ class TestJudge:
         batch = judge(X, X, settled_at(X), top_k=5)
         assert batch.nearest.shape == (2, 2)
         np.testing.assert_array_equal(batch.nearest[:, 0], [0, 1])
+
+
+class TestJudgeGivenTheRule:
+    def test_passing_the_fitted_rule_gives_the_same_verdicts_as_its_patterns(self) -> None:
+        from service.engine import DenseRule, judge, settle
+
+        rng = np.random.default_rng(5)
+        X = np.where(rng.random((200, 128)) < 0.5, -1, 1).astype(np.int8)
+        rule = DenseRule().fit(X)
+        cues = X[:40].copy()
+        cues[:, :30] = 0
+        res = settle(rule, cues)
+        a = judge(rule, cues, res)
+        b = judge(rule.patterns_, cues, res)
+        assert a.verdict == b.verdict
+        assert np.array_equal(a.best, b.best)
+        assert np.allclose(a.overlap, b.overlap)
+        assert np.allclose(a.cue_margin, b.cue_margin)
+
+    def test_an_unfitted_rule_is_an_engine_error(self) -> None:
+        from service.engine import DenseRule, EngineError, judge, settle
+
+        fitted = DenseRule().fit(np.ones((1, 8), dtype=np.int8))
+        res = settle(fitted, np.ones((1, 8), dtype=np.int8))
+        with pytest.raises(EngineError):
+            judge(DenseRule(), np.ones((1, 8), dtype=np.int8), res)
