@@ -198,3 +198,26 @@ class TestHebbianOnAirports:
         sets = make_cue_sets(records, SCHEMA, kinds=("typo",), n_per_kind=50, seed=1)
         row = evaluate(rule, airports["codec"], sets)[0]
         assert row.top1_accuracy < 0.5 <= row.nn_top1_accuracy
+
+
+class TestIdentityBlock:
+    def test_capacity_report_shows_the_identity_block_lowering_correlation(
+        self, airports: dict[str, Any]
+    ) -> None:
+        # A per-memory random block adds units that no two records share, so the mean pairwise
+        # overlap must fall by the block's share of the units (common practice: the overlap
+        # of concatenated blocks is the unit-weighted mean of the blocks' overlaps).
+        from service.engine import DenseRule
+
+        records = airports["records"][:400]
+        keys = [f"A{i:04d}" for i in range(len(records))]
+        plain = Codec(SCHEMA, seed=11)
+        spec = SCHEMA.to_dict()
+        spec["identity_units"] = 1024
+        with_id = Codec(Schema.from_dict(spec), seed=11)
+        a = capacity_report(DenseRule().fit(plain.encode_records(records, keys=keys)))
+        b = capacity_report(DenseRule().fit(with_id.encode_records(records, keys=keys)))
+        share = SCHEMA.n_units / (SCHEMA.n_units + 1024)
+        assert b.mean_overlap < a.mean_overlap
+        assert b.mean_overlap == pytest.approx(a.mean_overlap * share, abs=0.01)
+        assert b.correlation_load < a.correlation_load
