@@ -201,7 +201,57 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="LIST",
         help="comma-separated sections to run, by letter or name, e.g. 'a,b,dense' (default: all)",
     )
+    _add_key_parsers(command, data_dir_option)
+    # The client-side commands (collection, import, recall, ...) live in their own module.
+    from service.toolkit import add_parsers
+
+    add_parsers(command)
     return parser
+
+
+def _add_key_parsers(
+    command: Callable[[str, str, str], argparse.ArgumentParser],
+    data_dir_option: Callable[[argparse.ArgumentParser, str], None],
+) -> None:
+    """``cuebank team ...`` and ``cuebank key ...``: bootstrap keys directly on the database."""
+    where = "the SQLite database when CUEBANK_DATABASE_URL is unset"
+    team = command(
+        "team",
+        "create teams (directly on the database)",
+        "Manage teams directly on the configured database, for bootstrapping: the HTTP API "
+        "needs a key, and the first key of a team is made here.",
+    )
+    team_actions = team.add_subparsers(dest="action", metavar="ACTION", required=True)
+    team_create = team_actions.add_parser("create", help="create a team")
+    team_create.add_argument("name", help="team name: lower-case letters, digits, '-', '_'")
+    data_dir_option(team_create, where)
+
+    key = command(
+        "key",
+        "create, list and revoke API keys (directly on the database)",
+        "Manage API keys directly on the configured database. A new key's secret is printed "
+        "once and never stored: only its HMAC is kept. With PostgreSQL, set CUEBANK_KEY_PEPPER "
+        "to the value the service uses.",
+    )
+    key_actions = key.add_subparsers(dest="action", metavar="ACTION", required=True)
+    key_create = key_actions.add_parser("create", help="create a key and print its secret once")
+    key_create.add_argument("--team", required=True, help="the team the key belongs to")
+    key_create.add_argument(
+        "--scopes",
+        required=True,
+        help="comma-separated scopes from read, write, admin, e.g. 'read,write'",
+    )
+    key_create.add_argument(
+        "--expires-in-days", type=int, metavar="N", help="the key stops working after N days"
+    )
+    key_create.add_argument("--label", default="", help="a name to tell keys apart")
+    data_dir_option(key_create, where)
+    key_revoke = key_actions.add_parser("revoke", help="revoke a key by its prefix")
+    key_revoke.add_argument("prefix", help="the key's prefix, e.g. cb_k3x9q2mf")
+    data_dir_option(key_revoke, where)
+    key_list = key_actions.add_parser("list", help="list a team's keys (never their secrets)")
+    key_list.add_argument("--team", required=True, help="the team whose keys to list")
+    data_dir_option(key_list, where)
 
 
 def _settings(args: argparse.Namespace, **overrides: Any) -> Settings:
@@ -275,9 +325,12 @@ def _server_options() -> dict[str, Any]:
 def app_from_environment() -> FastAPI:
     """App factory for worker processes: each builds its app from CUEBANK_* variables."""
     from service.api.app import create_app
+    from service.api.logs import configure_logging
     from service.settings import get_settings
 
-    return create_app(get_settings())
+    settings = get_settings()
+    configure_logging(settings.log_level)
+    return create_app(settings)
 
 
 def _bind(host: str, port: int) -> socket.socket:
@@ -298,9 +351,20 @@ def _bind(host: str, port: int) -> socket.socket:
 def _run_server(app: FastAPI, sock: socket.socket, settings: Settings) -> int:
     import uvicorn
 
+    from service.api.logs import configure_logging
+
     host, port = sock.getsockname()[:2]
+    configure_logging(settings.log_level)
     config = uvicorn.Config(
-        app, host=host, port=port, log_level=settings.log_level.lower(), **_server_options()
+        app,
+        host=host,
+        port=port,
+        log_level=settings.log_level.lower(),
+        # The app writes one JSON access line per request itself (service/api/logs.py); the
+        # server's own line would repeat the raw path, which can hold memory keys.
+        access_log=False,
+        log_config=None,
+        **_server_options(),
     )
     server = uvicorn.Server(config)
     try:
@@ -367,6 +431,8 @@ def run_serve(args: argparse.Namespace) -> int:
             port=settings.port,
             workers=args.workers,
             log_level=settings.log_level.lower(),
+            access_log=False,
+            log_config=None,
             **_server_options(),
         )
     except SystemExit as exc:
@@ -419,9 +485,14 @@ def _example_cue(service: RecallService) -> tuple[str, dict[str, Any], bool]:
     return batch[0][0], dict(batch[0][1]), False
 
 
-def _prepare_demo(settings: Settings) -> tuple[str, dict[str, Any], bool, bool]:
+#: Label of the demo's key: each demo run revokes the live key carrying it and makes a new one.
+DEMO_KEY_LABEL: Final = "demo"
+
+
+def _prepare_demo(settings: Settings) -> tuple[str, dict[str, Any], bool, bool, str]:
     from service.demo import load_demo
-    from service.recall.service import RecallService
+    from service.recall.auth import KeyService, load_pepper
+    from service.recall.service import DEFAULT_TEAM, RecallService
     from service.storage.db import make_engine, make_session_factory
 
     before, after = _migrate(settings)
@@ -435,26 +506,35 @@ def _prepare_demo(settings: Settings) -> tuple[str, dict[str, Any], bool, bool]:
         try:
             loaded = load_demo(service)
             key, cue, verified = _example_cue(service)
+            # A fresh key per run, the previous one revoked: the demo can always show a working
+            # key while only its hash is ever stored.
+            keys = KeyService(settings, make_session_factory(engine), load_pepper(settings))
+            keys.ensure_team(DEFAULT_TEAM)
+            _, secret = keys.replace_labelled_key(
+                DEFAULT_TEAM, DEMO_KEY_LABEL, ("read", "write", "admin")
+            )
         except _database_errors() as exc:
             raise CommandError(f"cannot load the demo: {exc}") from None
     finally:
         engine.dispose()
-    return key, cue, verified, loaded
+    return key, cue, verified, loaded, secret
 
 
-def curl_example(base_url: str, collection: str, cue: dict[str, Any]) -> str:
-    """A copy-pasteable curl command recalling ``cue`` from ``collection``.
+def curl_example(base_url: str, collection: str, cue: dict[str, Any], api_key: str) -> str:
+    """A copy-pasteable curl command recalling ``cue`` from ``collection`` with ``api_key``.
 
     Examples
     --------
-    >>> print(curl_example("http://127.0.0.1:8000", "specimens", {"site_code": "SMP-M1"}))
+    >>> print(curl_example("http://127.0.0.1:8000", "specimens", {"site_code": "SMP-M1"}, "cb_x"))
     curl -s -X POST http://127.0.0.1:8000/v1/collections/specimens/recall \\
+      -H 'Authorization: Bearer cb_x' \\
       -H 'Content-Type: application/json' \\
       -d '{"cue": {"site_code": "SMP-M1"}}'
     """
     body = json.dumps({"cue": cue}, ensure_ascii=False)
     return (
         f"curl -s -X POST {base_url}/v1/collections/{collection}/recall \\\n"
+        f"  -H {shlex.quote('Authorization: Bearer ' + api_key)} \\\n"
         f"  -H 'Content-Type: application/json' \\\n"
         f"  -d {shlex.quote(body)}"
     )
@@ -466,7 +546,7 @@ def run_demo(args: argparse.Namespace) -> int:
     # The demo never touches a configured production database.
     settings = _settings(args, database_url=None)
     print(f"preparing the demo in {settings.data_dir.expanduser().absolute()} ...", flush=True)
-    key, cue, verified, loaded = _prepare_demo(settings)
+    key, cue, verified, loaded, secret = _prepare_demo(settings)
     print(
         f"collection '{DEMO_COLLECTION}': "
         + ("loaded the demo specimens" if loaded else "already there, left as it is")
@@ -482,11 +562,16 @@ def run_demo(args: argparse.Namespace) -> int:
     print()
     print(f"  service:  {base}")
     print(f"  API docs: {base}/docs")
+    print(f"  API key:  {secret}")
+    print(
+        "            (admin key of the demo team; only its hash is stored, so each demo run "
+        "makes a new one and revokes the last)"
+    )
     print()
     record = dict(demo_records())[key]
     print(f"Recall specimen {key} from a smudged label ({describe_fragment(record, cue)}):")
     print()
-    print(curl_example(base, DEMO_COLLECTION, cue))
+    print(curl_example(base, DEMO_COLLECTION, cue, secret))
     print()
     if not verified:
         print(
@@ -499,6 +584,74 @@ def run_demo(args: argparse.Namespace) -> int:
 
     print("Press Ctrl+C to stop.", flush=True)
     return _run_server(create_app(settings), sock, settings)
+
+
+def _key_service(settings: Settings) -> tuple[Any, Callable[[], None]]:
+    """A key service on the configured database, and the function that closes it."""
+    from service.recall.auth import KeyService, PepperMissing, load_pepper
+    from service.storage.db import make_engine, make_session_factory
+
+    _require_migrated(settings)
+    try:
+        pepper = load_pepper(settings)
+    except (PepperMissing, OSError) as exc:
+        raise CommandError(str(exc), EXIT_USAGE) from None
+    engine = make_engine(
+        settings.resolved_database_url, sqlite_synchronous=settings.sqlite_synchronous
+    )
+    return KeyService(settings, make_session_factory(engine), pepper), engine.dispose
+
+
+def _when(value: Any) -> str:
+    return value.isoformat(timespec="seconds") if value is not None else "-"
+
+
+def run_team(args: argparse.Namespace) -> int:
+    from service.recall.errors import ServiceError
+
+    keys, close = _key_service(_settings(args))
+    try:
+        keys.create_team(args.name)
+    except ServiceError as exc:
+        raise CommandError(str(exc), EXIT_USAGE) from None
+    finally:
+        close()
+    print(f"team '{args.name}' created; make its first key with:")
+    print(f"  cuebank key create --team {args.name} --scopes read,write,admin")
+    return EXIT_OK
+
+
+def run_key(args: argparse.Namespace) -> int:
+    from service.recall.errors import ServiceError
+
+    keys, close = _key_service(_settings(args))
+    try:
+        if args.action == "create":
+            info, secret = keys.create_key(
+                args.team,
+                args.scopes.split(","),
+                label=args.label,
+                expires_in_days=args.expires_in_days,
+            )
+            expiry = f", expires {_when(info.expires_at)}" if info.expires_at else ""
+            print(f"key {info.prefix} for team '{info.team}' ({','.join(info.scopes)}{expiry})")
+            print("secret (shown once, store it now; send as 'Authorization: Bearer <secret>'):")
+            print(secret)
+        elif args.action == "revoke":
+            info = keys.revoke_key(args.prefix, team=None)
+            print(f"key {info.prefix} of team '{info.team}' revoked")
+        else:
+            print(f"{'PREFIX':<12} {'STATE':<8} {'SCOPES':<17} {'EXPIRES':<26} LABEL")
+            for info in keys.list_keys(args.team):
+                print(
+                    f"{info.prefix:<12} {info.state:<8} {','.join(info.scopes):<17} "
+                    f"{_when(info.expires_at):<26} {info.label}"
+                )
+    except ServiceError as exc:
+        raise CommandError(str(exc), EXIT_USAGE) from None
+    finally:
+        close()
+    return EXIT_OK
 
 
 def _set_blas_threads() -> str:
@@ -545,14 +698,22 @@ _COMMANDS: Final[dict[str, Callable[[argparse.Namespace], int]]] = {
     "migrate": run_migrate,
     "demo": run_demo,
     "bench": run_bench,
+    "team": run_team,
+    "key": run_key,
 }
+
+
+def _command(name: str) -> Callable[[argparse.Namespace], int]:
+    from service.toolkit import COMMANDS
+
+    return _COMMANDS.get(name) or COMMANDS[name]
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``cuebank`` console script; returns the exit code."""
     args = build_parser().parse_args(argv)
     try:
-        return _COMMANDS[args.command](args)
+        return _command(args.command)(args)
     except CommandError as exc:
         print(f"cuebank {args.command}: error: {exc}", file=sys.stderr)
         return exc.code

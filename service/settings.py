@@ -14,7 +14,7 @@ from functools import lru_cache
 from pathlib import Path
 from typing import Literal, Self
 
-from pydantic import Field, model_validator
+from pydantic import Field, SecretStr, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 __all__ = ["MIB", "Settings", "get_settings"]
@@ -50,6 +50,16 @@ class Settings(BaseSettings):
     cache_bytes: int = Field(
         default=512 * MIB, ge=0, description="Memory budget for compiled collections."
     )
+    shutdown_drain_seconds: float = Field(
+        default=0.0,
+        ge=0,
+        le=600,
+        description=(
+            "On SIGTERM, how long to keep serving with /readyz answering 503 before the server "
+            "stops accepting connections, so a load balancer can take the worker out first. "
+            "Requests in flight finish either way."
+        ),
+    )
     log_level: Literal["CRITICAL", "ERROR", "WARNING", "INFO", "DEBUG"] = "INFO"
     host: str = "127.0.0.1"
     port: int = Field(default=8000, ge=0, le=65535)
@@ -65,6 +75,34 @@ class Settings(BaseSettings):
     max_steps: int = Field(default=200, gt=0)
     max_page_size: int = Field(default=500, gt=0)
     default_page_size: int = Field(default=100, gt=0)
+    max_json_depth: int = Field(
+        default=32, gt=0, description="Deepest nesting of arrays and objects in a JSON body."
+    )
+    max_import_line_bytes: int = Field(
+        default=256 * 1024,
+        gt=0,
+        description="Longest line of an NDJSON or CSV import (or reconciliation) file.",
+    )
+
+    # Keys and abuse control.
+    key_pepper: SecretStr | None = Field(
+        default=None,
+        description=(
+            "Server secret mixed into every stored key hash (HMAC-SHA-256), at least 32 "
+            "characters. Unset with SQLite: generated once into data_dir/key_pepper (mode 0600). "
+            "Required with PostgreSQL, where workers on several machines must share it."
+        ),
+    )
+    rate_per_second: float = Field(
+        default=50.0, gt=0, description="Requests per second each key may sustain (per worker)."
+    )
+    burst: int = Field(default=100, gt=0, description="Requests a key may send at once.")
+    auth_failures_per_minute: int = Field(
+        default=20,
+        gt=0,
+        description="Failed authentications one client address may make in a minute before "
+        "its requests are refused with 429 until the minute is over.",
+    )
 
     @model_validator(mode="after")
     def _check_consistency(self) -> Self:
@@ -78,6 +116,8 @@ class Settings(BaseSettings):
                 f"max_bulk_body_bytes is {self.max_bulk_body_bytes}, below max_body_bytes "
                 f"{self.max_body_bytes}"
             )
+        if self.key_pepper is not None and len(self.key_pepper.get_secret_value()) < 32:
+            raise ValueError("key_pepper must be at least 32 characters long")
         return self
 
     @property

@@ -32,6 +32,28 @@ def _postgres_schema_url(base_url: str) -> Iterator[str]:
         admin.dispose()
 
 
+@pytest.fixture(scope="session")
+def postgres_session_url() -> Iterator[str]:
+    """One PostgreSQL schema for the whole test session, dropped at its end; skips without one.
+
+    For suites that empty the tables between tests instead of paying for a schema and a
+    migration run per test.
+    """
+    base_url = os.environ.get(POSTGRES_ENV)
+    if not base_url:
+        pytest.skip(f"{POSTGRES_ENV} is not set; PostgreSQL variant not run")
+    yield from _postgres_schema_url(base_url)
+
+
+@pytest.fixture
+def postgres_url() -> Iterator[str]:
+    """A fresh PostgreSQL schema for one test, dropped after it; skips without a server."""
+    base_url = os.environ.get(POSTGRES_ENV)
+    if not base_url:
+        pytest.skip(f"{POSTGRES_ENV} is not set; PostgreSQL variant not run")
+    yield from _postgres_schema_url(base_url)
+
+
 @pytest.fixture(
     params=[
         pytest.param("sqlite", id="sqlite"),

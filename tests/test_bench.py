@@ -86,6 +86,29 @@ class TestQuickRun:
         for row in report["sections"]["dense"]["rows"]:
             assert 0.0 <= row["agreement"] <= 1.0
 
+    def test_http_reports_rates_latencies_and_failures_or_why_not(
+        self, report: dict[str, Any]
+    ) -> None:
+        sec = report["sections"]["http"]
+        if sec["skipped"] is not None:
+            # a machine where no server can start still gets a reason, never a silent gap
+            assert sec["skipped"].startswith("not measured: ")
+            return
+        assert sec["summary"]["generator"]
+        assert sec["summary"]["non_2xx_total"] == sum(r["non_2xx"] for r in sec["rows"])
+        endpoints = {r["endpoint"].split(" (")[0] for r in sec["rows"]}
+        assert endpoints == {"GET /healthz", "POST recall", "POST recall:batch"}
+        for row in sec["rows"]:
+            assert row["generator"] == sec["summary"]["generator"]
+            assert row["requests"] > 0
+            assert row["requests_per_second"] > 0
+            assert 0 < row["p50_ms"] <= row["p99_ms"]
+            assert row["ratio"] > 0
+            assert isinstance(row["non_2xx"], int)
+            assert row["non_2xx"] >= 0
+        batch = [r for r in sec["rows"] if r["endpoint"].startswith("POST recall:batch")]
+        assert all(r["cues_per_second"] > r["requests_per_second"] for r in batch)
+
     def test_growth_reports_a_fitted_exponent_for_each_family(self, report: dict[str, Any]) -> None:
         summary = report["sections"]["growth"]["summary"]
         assert math.isfinite(summary["dense_exponent_in_P"])

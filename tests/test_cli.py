@@ -236,5 +236,12 @@ class TestDemoCommand:
         assert main(argv) == EXIT_OK
         second = capsys.readouterr().out
         assert "already there" in second
-        # The example is chosen deterministically, so a second run prints the same request.
-        assert first.split("Recall specimen")[1] == second.split("Recall specimen")[1]
+        # The example is chosen deterministically, so a second run prints the same request,
+        # with a new key: only hashes are stored, so each run makes one and revokes the last.
+        secret = re.compile(r"cb_[a-z0-9]{8}_[A-Za-z0-9_-]{43}")
+        keys = [secret.findall(out) for out in (first, second)]
+        assert len(set(keys[0])) == len(set(keys[1])) == 1
+        assert keys[0][0] != keys[1][0]
+        assert f"-H 'Authorization: Bearer {keys[1][0]}'" in second
+        masked = [secret.sub("<key>", out).split("Recall specimen")[1] for out in (first, second)]
+        assert masked[0] == masked[1]

@@ -19,7 +19,16 @@ from service.storage.migrate import (
 )
 from service.storage.models import NAMING_CONVENTION, Base
 
-TABLES = {"teams", "collections", "memories", "compile_reports"}
+TABLES = {
+    "teams",
+    "collections",
+    "memories",
+    "compile_reports",
+    "reconciliation_jobs",
+    "reconciliation_rows",
+    "api_keys",
+    "audit_events",
+}
 
 
 @pytest.fixture

@@ -101,7 +101,12 @@ class TestExamplesAgainstTheService:
         how = example["request"]
         async with app.router.lifespan_context(app):
             transport = httpx.ASGITransport(app=app)
-            async with httpx.AsyncClient(transport=transport, base_url="http://t") as client:
+            app.state.keys.ensure_team("default")
+            _, secret = app.state.keys.create_key("default", ["read", "write", "admin"])
+            headers = {"Authorization": f"Bearer {secret}"}
+            async with httpx.AsyncClient(
+                transport=transport, base_url="http://t", headers=headers
+            ) as client:
                 if how.get("seed"):
                     await _seed(client, how["seed"])
                 r = await client.request(how["method"], how["path"], json=example["value"])

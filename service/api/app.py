@@ -7,6 +7,7 @@ one :class:`RecallService` every request shares; on shutdown it disposes of the 
 
 from __future__ import annotations
 
+import re
 from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
 from typing import Any
@@ -16,6 +17,8 @@ from fastapi.openapi.utils import get_openapi
 from sqlalchemy.engine import make_url
 from starlette.concurrency import run_in_threadpool
 
+from service.recall.auth import KeyService, PepperMissing, load_pepper
+from service.recall.jobs import JobRunner, ReconciliationService
 from service.recall.service import RecallService
 from service.settings import Settings
 from service.storage.db import make_engine, make_session_factory
@@ -24,7 +27,10 @@ from service.storage.migrate import current_revision, head_revision, upgrade_to_
 from . import docs
 from .bodies import BodyLimitMiddleware
 from .errors import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_error_handlers
-from .routers import collections, health, memories, problems, recall
+from .lifecycle import Lifecycle
+from .logs import RequestLogMiddleware
+from .routers import collections, health, keys, memories, problems, recall, reconciliations
+from .security import AuthMiddleware, FailureLimiter, TokenBuckets, document_security
 
 __all__ = ["DatabaseNotReady", "create_app"]
 
@@ -33,7 +39,10 @@ DESCRIPTION = (
     "send a cue made of whatever fields you know and get back the full record, its overlap "
     "and a verdict: `recalled`, `spurious` or `unsettled`. The verdict is a statistical signal, "
     "not proof: records about people need human review before any decision is taken on them. "
-    "Errors are RFC 9457 problem documents; each `type` URI is described at /problems/{slug}."
+    "Errors are RFC 9457 problem documents; each `type` URI is described at /problems/{slug}. "
+    "Every call except the probes, these docs and the problem pages needs a team's API key as "
+    "`Authorization: Bearer <key>`; each operation names the scope it needs (`read`, `write` "
+    "or `admin`)."
 )
 
 
@@ -66,11 +75,26 @@ def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         url = settings.resolved_database_url
         await run_in_threadpool(_check_database, url, migrate)
+        try:
+            pepper = await run_in_threadpool(load_pepper, settings)
+        except (PepperMissing, OSError) as exc:
+            raise DatabaseNotReady(f"cannot check API keys: {exc}") from exc
         engine = make_engine(url, sqlite_synchronous=settings.sqlite_synchronous)
         try:
             app.state.engine = engine
             app.state.service = RecallService(settings, make_session_factory(engine))
-            yield
+            app.state.keys = KeyService(settings, make_session_factory(engine), pepper)
+            app.state.jobs = ReconciliationService(app.state.service)
+            # One job runner per app; it resumes jobs a previous process left running.
+            runner = JobRunner(app.state.jobs)
+            await run_in_threadpool(runner.start)
+            app.state.lifecycle = lifecycle = Lifecycle(settings.shutdown_drain_seconds)
+            lifecycle.install()
+            try:
+                yield
+            finally:
+                lifecycle.shut_down()
+                await run_in_threadpool(runner.stop)
         finally:
             engine.dispose()
 
@@ -111,6 +135,8 @@ def create_app(settings: Settings, *, migrate: bool = False) -> FastAPI:
     app.include_router(collections.router)
     app.include_router(memories.router)
     app.include_router(recall.router)
+    app.include_router(reconciliations.router)
+    app.include_router(keys.router)
     app.include_router(health.router)
     app.include_router(problems.router)
     app.include_router(docs.router)
@@ -120,9 +146,20 @@ def create_app(settings: Settings, *, migrate: bool = False) -> FastAPI:
         BodyLimitMiddleware,
         max_body=settings.max_body_bytes,
         max_bulk_body=settings.max_bulk_body_bytes,
-        bulk_path=memories.IMPORT_PATH,
+        bulk_path=re.compile(
+            f"{memories.IMPORT_PATH.pattern}|{reconciliations.SUBMIT_PATH.pattern}"
+        ),
+        max_json_depth=settings.max_json_depth,
+    )
+    # Outside the body limit: a caller without a valid key is refused before its body is read.
+    app.add_middleware(
+        AuthMiddleware,
+        buckets=TokenBuckets(settings.rate_per_second, settings.burst),
+        failures=FailureLimiter(settings.auth_failures_per_minute),
     )
     app.add_middleware(UnexpectedErrorMiddleware)
+    # Outermost, so every answer (a 500 too) carries the request id and gets its log line.
+    app.add_middleware(RequestLogMiddleware)
 
     def openapi() -> dict[str, Any]:
         if app.openapi_schema is None:
@@ -132,7 +169,7 @@ def create_app(settings: Settings, *, migrate: bool = False) -> FastAPI:
                 description=app.description,
                 routes=app.routes,
             )
-            app.openapi_schema = _problem_media_types(schema)
+            app.openapi_schema = document_security(_problem_media_types(schema), app.routes)
         return app.openapi_schema
 
     app.openapi = openapi  # type: ignore[method-assign]

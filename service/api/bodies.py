@@ -7,17 +7,141 @@ middleware and are read in chunks by their route against ``max_bulk_body_bytes``
 
 from __future__ import annotations
 
+import json
+import math
 import re
 from collections.abc import AsyncIterator
+from typing import Any
 
 from starlette.datastructures import Headers
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.recall.errors import LimitExceeded, ServiceError
 
-from .errors import MalformedBody, problem_response
+from .errors import MalformedBody, MalformedJson, problem_response
 
-__all__ = ["BodyLimitMiddleware", "body_too_large", "check_utf8", "read_capped"]
+__all__ = [
+    "BodyLimitMiddleware",
+    "body_too_large",
+    "check_json",
+    "check_lines",
+    "check_utf8",
+    "json_depth_over",
+    "read_capped",
+    "strict_json_loads",
+]
+
+# Inside a string a backslash escapes the next character; outside, only brackets and quotes
+# change the nesting.
+_JSON_TOKENS = re.compile(rb'\\.|["\[\]{}]', re.DOTALL)
+
+
+def json_depth_over(body: bytes, maximum: int) -> bool:
+    """Whether arrays and objects in ``body`` nest deeper than ``maximum``, without parsing.
+
+    >>> json_depth_over(b'{"a": [[1]], "b": "[[[[["}', 3), json_depth_over(b"[[[[1]]]]", 3)
+    (False, True)
+    """
+    if body.count(b"[") + body.count(b"{") <= maximum:
+        return False
+    depth = 0
+    in_string = False
+    for match in _JSON_TOKENS.finditer(body):
+        token = match.group()
+        if token == b'"':
+            in_string = not in_string
+        elif in_string or len(token) == 2:
+            continue
+        elif token in (b"[", b"{"):
+            depth += 1
+            if depth > maximum:
+                return True
+        else:
+            depth -= 1
+    return False
+
+
+class _DuplicateMember(ValueError):
+    pass
+
+
+def _object(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for name, value in pairs:
+        if name in out:
+            raise _DuplicateMember(f"the member {name[:80]!r} appears twice in one object")
+        out[name] = value
+    return out
+
+
+def _constant(name: str) -> Any:
+    raise ValueError(f"{name} is not a JSON number")
+
+
+def _float(text: str) -> float:
+    value = float(text)
+    if not math.isfinite(value):
+        raise ValueError(f"the number {text[:40]} is too large for a double")
+    return value
+
+
+def strict_json_loads(text: str | bytes) -> Any:
+    """Parse JSON as RFC 8259 means it: no NaN or Infinity, no duplicate object members.
+
+    Python's parser accepts both by default (and keeps the last duplicate), so two readers of
+    one body could disagree on what it says. Raises ``ValueError`` with a readable message.
+
+    >>> strict_json_loads('{"a": 1, "a": 2}')
+    Traceback (most recent call last):
+    ...
+    service.api.bodies._DuplicateMember: the member 'a' appears twice in one object
+    """
+    return json.loads(text, object_pairs_hook=_object, parse_constant=_constant, parse_float=_float)
+
+
+def check_json(body: bytes, max_depth: int) -> None:
+    """Refuse a JSON body that nests too deep (422) or that strict JSON rejects (400)."""
+    if json_depth_over(body, max_depth):
+        raise LimitExceeded(
+            f"the JSON body nests arrays and objects more than {max_depth} deep, the limit "
+            "(max_json_depth)",
+            limit="max_json_depth",
+            value=max_depth + 1,
+            maximum=max_depth,
+        )
+    try:
+        strict_json_loads(body)
+    except json.JSONDecodeError:
+        return  # the route's own parser reports the position, as it always has
+    except (ValueError, RecursionError) as exc:
+        raise MalformedJson(f"the request body is not valid JSON: {exc}") from None
+
+
+def check_lines(raw: bytes, maximum: int, limit: str = "max_import_line_bytes") -> None:
+    """Refuse a file with a line longer than ``maximum`` bytes before any parser sees it.
+
+    >>> check_lines(b"ab\\ncd\\n", 2)
+    >>> check_lines(b"ab\\ncde\\n", 2)
+    Traceback (most recent call last):
+    ...
+    service.recall.errors.LimitExceeded: line 2 is 3 bytes long, above the limit of 2 bytes
+    """
+    start = 0
+    number = 1
+    size = len(raw)
+    while start < size:
+        end = raw.find(b"\n", start)
+        if end < 0:
+            end = size
+        if end - start > maximum:
+            raise LimitExceeded(
+                f"line {number} is {end - start} bytes long, above the limit of {maximum} bytes",
+                limit=limit,
+                value=end - start,
+                maximum=maximum,
+            )
+        start = end + 1
+        number += 1
 
 
 def body_too_large(size: int, maximum: int, limit: str) -> LimitExceeded:
@@ -72,12 +196,19 @@ class BodyLimitMiddleware:
     """
 
     def __init__(
-        self, app: ASGIApp, *, max_body: int, max_bulk_body: int, bulk_path: re.Pattern[str]
+        self,
+        app: ASGIApp,
+        *,
+        max_body: int,
+        max_bulk_body: int,
+        bulk_path: re.Pattern[str],
+        max_json_depth: int = 32,
     ) -> None:
         self.app = app
         self.max_body = max_body
         self.max_bulk_body = max_bulk_body
         self.bulk_path = bulk_path
+        self.max_json_depth = max_json_depth
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
@@ -99,6 +230,7 @@ class BodyLimitMiddleware:
             body, trailing = await self._read(receive)
             if body and _is_json(headers):
                 check_utf8(body)
+                check_json(body, self.max_json_depth)
         except ServiceError as error:
             await problem_response(error, path)(scope, receive, send)
             return

@@ -13,7 +13,10 @@ is a bug: it is logged with its traceback and answered with a bare 500 that show
     ├── RouteNotFound            404 not-found (no such path)
     ├── MethodNotAllowed         405 method-not-allowed
     ├── UnsupportedMediaType     415 unsupported-media-type
-    └── RequestInvalid           422 invalid-request (fields failing validation, listed)
+    ├── RequestInvalid           422 invalid-request (fields failing validation, listed)
+    └── RateLimited              429 rate-limited (Retry-After says when to come back)
+
+Authentication and scope problems (401, 403) come from :mod:`service.recall.auth`.
 """
 
 from __future__ import annotations
@@ -26,11 +29,13 @@ from typing import Any
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
+from sqlalchemy import exc as sa_exc
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.routing import Match
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-from service.recall.errors import PROBLEM_TYPES, ServiceError, problem_type_uri
+from service.recall.auth import AUTH_PROBLEM_TYPES, Unauthenticated
+from service.recall.errors import PROBLEM_TYPES, ServiceError, Unavailable, problem_type_uri
 
 __all__ = [
     "API_PROBLEM_TYPES",
@@ -38,6 +43,7 @@ __all__ = [
     "MalformedBody",
     "MalformedJson",
     "MethodNotAllowed",
+    "RateLimited",
     "RequestInvalid",
     "RouteNotFound",
     "UnexpectedErrorMiddleware",
@@ -89,6 +95,16 @@ class RequestInvalid(ServiceError):
     title = "Invalid request"
 
 
+class RateLimited(ServiceError):
+    status = 429
+    slug = "rate-limited"
+    title = "Too many requests"
+
+    def __init__(self, detail: str, *, retry_after: int, limit: str) -> None:
+        super().__init__(detail, limit=limit, retry_after=retry_after)
+        self.retry_after = retry_after
+
+
 #: Problem types only the HTTP layer raises, beside the service's own.
 API_PROBLEM_TYPES: dict[str, tuple[str, int]] = {
     cls.slug: (cls.title, cls.status)
@@ -99,13 +115,14 @@ API_PROBLEM_TYPES: dict[str, tuple[str, int]] = {
         MethodNotAllowed,
         UnsupportedMediaType,
         RequestInvalid,
+        RateLimited,
     )
 }
 
 
 def all_problem_types() -> dict[str, tuple[str, int]]:
     """Every problem slug the API can answer with, and its title and usual status."""
-    return {**PROBLEM_TYPES, **API_PROBLEM_TYPES}
+    return {**PROBLEM_TYPES, **AUTH_PROBLEM_TYPES, **API_PROBLEM_TYPES}
 
 
 def problem_body(
@@ -184,6 +201,10 @@ def _validation_problem(exc: RequestValidationError) -> ServiceError:
 
 async def _on_service_error(request: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, ServiceError)
+    if isinstance(exc, Unauthenticated):
+        return problem_response(exc, request.url.path, {"WWW-Authenticate": exc.challenge})
+    if isinstance(exc, RateLimited):
+        return problem_response(exc, request.url.path, {"Retry-After": str(exc.retry_after)})
     return problem_response(exc, request.url.path)
 
 
@@ -241,6 +262,43 @@ def install_error_handlers(app: FastAPI) -> None:
     app.add_exception_handler(ServiceError, _on_service_error)
     app.add_exception_handler(RequestValidationError, _on_validation_error)
     app.add_exception_handler(StarletteHTTPException, _on_http_error)
+    app.add_exception_handler(sa_exc.DBAPIError, _on_database_error)
+    app.add_exception_handler(sa_exc.TimeoutError, _on_database_error)
+
+
+#: Seconds a client is asked to wait after a 503 caused by the database.
+DATABASE_RETRY_AFTER = 1
+
+
+def database_unavailable(exc: BaseException) -> Unavailable | None:
+    """The 503 for a database the service cannot reach or use right now; None for other errors.
+
+    A lost or refused connection, a server going away mid-query, a SQLite file locked past the
+    busy timeout and a connection pool with none free all pass once the database is back, so
+    the client is told to retry rather than that the service is broken.
+    """
+    if isinstance(exc, sa_exc.TimeoutError):
+        return Unavailable("every database connection is in use; retry shortly", database=True)
+    if isinstance(exc, sa_exc.DBAPIError) and (
+        exc.connection_invalidated
+        or isinstance(exc, sa_exc.OperationalError | sa_exc.InterfaceError)
+    ):
+        return Unavailable("the database cannot be reached now; retry shortly", database=False)
+    return None
+
+
+def _database_problem(exc: BaseException, method: str, path: str) -> JSONResponse:
+    problem = database_unavailable(exc)
+    if problem is None:
+        logger.error("unexpected database error answering %s %s", method, path, exc_info=exc)
+        return internal_problem(path)
+    # The driver's message can name hosts and users, so it goes to the log only.
+    logger.warning("database unavailable answering %s %s: %s", method, path, exc)
+    return problem_response(problem, path, {"Retry-After": str(DATABASE_RETRY_AFTER)})
+
+
+async def _on_database_error(request: Request, exc: Exception) -> JSONResponse:
+    return _database_problem(exc, request.method, request.url.path)
 
 
 def internal_problem(instance: str | None) -> JSONResponse:
@@ -272,7 +330,12 @@ class UnexpectedErrorMiddleware:
 
         try:
             await self.app(scope, receive, tracking_send)
-        except Exception:
+        except Exception as exc:
+            # Middlewares outside the exception handlers (authentication) query the database too.
+            if not started and database_unavailable(exc) is not None:
+                response = _database_problem(exc, scope["method"], scope["path"])
+                await response(scope, receive, send)
+                return
             logger.exception("unexpected error answering %s %s", scope["method"], scope["path"])
             if started:
                 raise

@@ -14,8 +14,10 @@ import math
 from collections.abc import Iterator, Mapping
 from typing import Any
 
-from service.recall.errors import ImportRejected
+from service.recall.errors import ImportRejected, LimitExceeded
 from service.recall.models import RowError
+
+from .bodies import strict_json_loads
 
 __all__ = ["ImportRow", "parse_csv", "parse_ndjson"]
 
@@ -34,9 +36,15 @@ def parse_ndjson(text: str) -> Iterator[ImportRow]:
         if not line.strip():
             continue  # blank lines (a trailing newline, say) carry nothing
         try:
-            obj = json.loads(line)
+            obj = strict_json_loads(line)
         except json.JSONDecodeError as exc:
             yield RowError(number, None, None, f"not valid JSON: {exc.msg} at column {exc.colno}")
+            continue
+        except RecursionError:
+            yield RowError(number, None, None, "not valid JSON: nested too deep")
+            continue
+        except ValueError as exc:
+            yield RowError(number, None, None, f"not valid JSON: {exc}")
             continue
         if not isinstance(obj, dict):
             yield RowError(number, None, None, f"a line must be a JSON object, got {_kind(obj)}")
@@ -63,10 +71,13 @@ def parse_ndjson(text: str) -> Iterator[ImportRow]:
         yield (number, key, fields)
 
 
-def parse_csv(text: str, kinds: Mapping[str, str]) -> Iterator[ImportRow]:
+def parse_csv(
+    text: str, kinds: Mapping[str, str], *, max_columns: int | None = None
+) -> Iterator[ImportRow]:
     """Rows of a CSV with a header: a ``key`` column and one column per field of ``kinds``.
 
-    An empty cell is a missing value; number cells must parse as finite numbers.
+    An empty cell is a missing value; number cells must parse as finite numbers. A header
+    with more than ``max_columns`` columns is refused as a whole (limit ``max_fields``).
 
     >>> rows = parse_csv("key,depth_m\\nSMP-0001,3.5\\nSMP-0002,deep\\n", {"depth_m": "number"})
     >>> list(rows)  # doctest: +NORMALIZE_WHITESPACE
@@ -80,6 +91,14 @@ def parse_csv(text: str, kinds: Mapping[str, str]) -> Iterator[ImportRow]:
         raise _header_error(None, "the CSV is empty; it needs a header row") from None
     except csv.Error as exc:
         raise _header_error(None, f"the CSV header cannot be read: {exc}") from None
+    if max_columns is not None and len(header) > max_columns:
+        raise LimitExceeded(
+            f"the CSV header has {len(header)} columns, above the limit of {max_columns} "
+            "(a key and max_fields fields); nothing was written",
+            limit="max_fields",
+            value=len(header),
+            maximum=max_columns,
+        )
     header = [name.strip() for name in header]
     _check_header(header, kinds)
     try:

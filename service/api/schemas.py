@@ -347,3 +347,118 @@ class ProblemTypeRead(_Output):
     title: str
     status: int
     description: str
+
+
+# ---------------------------------------------------------------------- reconciliation
+
+__all__ += ["ReconciliationRead", "ReviewRowRead"]
+
+
+class ReviewRowRead(_Output):
+    """An answered row worth a human look: one of the lowest cue margins of the job."""
+
+    row: int
+    ref: str | None = None
+    verdict: str
+    reason: str
+    best_key: str | None = None
+    cue_margin: float | None = None
+    margin: float | None = None
+
+
+class ReconciliationRead(_Output):
+    """A reconciliation job: its progress, verdict counts so far, and the rows to review."""
+
+    id: str
+    collection: str
+    state: Literal["queued", "running", "done", "failed", "cancelled"]
+    format: Literal["csv", "ndjson"]
+    rows_total: int
+    rows_done: int
+    rate: float | None = Field(default=None, description="Rows answered per second.")
+    eta_seconds: float | None = Field(default=None, description="Estimated seconds left.")
+    counts: dict[str, int] = Field(
+        description="Rows per verdict so far: recalled, spurious, unsettled, invalid."
+    )
+    reasons: dict[str, dict[str, int]] = Field(
+        description="Spurious and unsettled rows per reason."
+    )
+    error: str | None = Field(default=None, description="Why the job failed.")
+    attempts: int = Field(description="How many times a worker took the job up.")
+    created_at: datetime
+    updated_at: datetime
+    started_at: datetime | None = None
+    finished_at: datetime | None = None
+    review: list[ReviewRowRead] = Field(
+        description="Up to 20 answered rows with the lowest cue margins: the closest calls."
+    )
+    result_url: str = Field(description="Where the per-row results are read.")
+
+
+# ---------------------------------------------------------------------- keys and audit
+
+__all__ += ["AuditPage", "AuditRead", "KeyCreate", "KeyCreated", "KeyPage", "KeyRead"]
+
+ScopeName = Literal["read", "write", "admin"]
+
+
+class KeyCreate(_Input):
+    """A new key for the caller's team."""
+
+    scopes: list[ScopeName] = Field(
+        min_length=1,
+        max_length=3,
+        description="read: recall, list and read; write: memories and imports; admin: "
+        "collections, compile, keys and the audit log.",
+    )
+    label: str = Field(
+        default="",
+        max_length=128,
+        pattern=r"^[^\x00-\x1f\x7f]*$",
+        description="A name to tell keys apart.",
+    )
+    expires_in_days: int | None = Field(
+        default=None, ge=1, le=3650, description="Days until the key stops working; unset: never."
+    )
+
+
+class KeyRead(_Output):
+    """A key as listed: never its secret."""
+
+    prefix: str = Field(description="The key's public name, the first 11 characters of it.")
+    scopes: list[ScopeName]
+    label: str
+    state: Literal["active", "revoked", "expired"]
+    created_at: datetime
+    expires_at: datetime | None = None
+    revoked_at: datetime | None = None
+    last_used_at: datetime | None = Field(
+        default=None, description="Last successful use, to within a minute."
+    )
+
+
+class KeyCreated(KeyRead):
+    """A key just created: the only answer that ever carries the secret."""
+
+    secret: str = Field(description="The whole key; send it as 'Authorization: Bearer <key>'.")
+
+
+class KeyPage(_Output):
+    items: list[KeyRead]
+
+
+class AuditRead(_Output):
+    """One write or admin action: who, what, where, when. Never a body or a secret."""
+
+    id: int
+    key_prefix: str = Field(description="The key that acted, or 'cli' for the command line.")
+    action: str
+    collection: str | None = None
+    memory_key: str | None = None
+    detail: dict[str, Any]
+    created_at: datetime
+
+
+class AuditPage(_Output):
+    items: list[AuditRead]
+    next_cursor: str | None = Field(description="Pass as cursor for the next (older) page.")

@@ -68,7 +68,14 @@ class CompiledMemory:
 
     def copy_rule(self) -> MemoryRule:
         """A deep copy of the rule, safe to update while recalls read the original."""
-        return copy.deepcopy(self.rule)
+        # Recalls on the original may add a lazily built member (the float32 patterns) at any
+        # moment, and deepcopy walks the member dict in Python code, failing with "dictionary
+        # changed size during iteration" when that happens mid-walk. dict() takes the members
+        # in one step under the GIL; the walk then runs over that snapshot.
+        members = dict(vars(self.rule))
+        clone = object.__new__(type(self.rule))
+        vars(clone).update(copy.deepcopy(members))
+        return clone
 
 
 class CompiledCache:

@@ -10,18 +10,21 @@ here.
     ServiceError                       500 internal
     ├── NotFoundError                  404
     │   ├── CollectionNotFound             collection-not-found
-    │   └── MemoryNotFound                 memory-not-found
+    │   ├── MemoryNotFound                 memory-not-found
+    │   └── JobNotFound                    job-not-found
     ├── ConflictError                  409
     │   ├── CollectionExists               collection-exists
     │   ├── EmptyCollection                collection-empty (recall or compile with no memories)
-    │   └── DependentMemories              memories-dependent
+    │   ├── DependentMemories              memories-dependent
+    │   └── JobFinished                    job-finished (cancelling a job that has ended)
     ├── InvalidInputError              422 invalid-input
     │   ├── SchemaInvalid                  invalid-schema
     │   ├── RecordInvalid                  invalid-record
     │   ├── CueInvalid                     invalid-cue
     │   ├── OptionInvalid                  invalid-option
     │   ├── CursorInvalid                  invalid-cursor
-    │   └── ImportRejected                 import-rejected (one entry per bad row)
+    │   ├── ImportRejected                 import-rejected (one entry per bad row)
+    │   └── FragmentsRejected              fragments-rejected (a reconciliation file's header)
     ├── LimitExceeded                  413 or 422 limit-exceeded (names the limit and the value)
     └── Unavailable                    503 unavailable (database unreachable, not migrated)
 """
@@ -38,8 +41,11 @@ __all__ = [
     "CursorInvalid",
     "DependentMemories",
     "EmptyCollection",
+    "FragmentsRejected",
     "ImportRejected",
     "InvalidInputError",
+    "JobFinished",
+    "JobNotFound",
     "LimitExceeded",
     "MemoryNotFound",
     "NotFoundError",
@@ -153,6 +159,21 @@ class ImportRejected(InvalidInputError):
     title = "Import rejected"
 
 
+class JobNotFound(NotFoundError):
+    slug = "job-not-found"
+    title = "Reconciliation job not found"
+
+
+class JobFinished(ConflictError):
+    slug = "job-finished"
+    title = "Reconciliation job already finished"
+
+
+class FragmentsRejected(InvalidInputError):
+    slug = "fragments-rejected"
+    title = "Fragments file rejected"
+
+
 class LimitExceeded(ServiceError):
     """A hard limit was exceeded; ``extra`` carries ``limit``, ``value`` and ``maximum``."""
 
@@ -198,5 +219,8 @@ PROBLEM_TYPES: dict[str, tuple[str, int]] = {
         ImportRejected,
         LimitExceeded,
         Unavailable,
+        JobNotFound,
+        JobFinished,
+        FragmentsRejected,
     )
 }

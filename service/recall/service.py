@@ -85,6 +85,7 @@ __all__ = ["DEFAULT_TEAM", "RecallService"]
 
 DEFAULT_TEAM = "default"
 NAME_RE = re.compile(r"^[a-z0-9][a-z0-9_-]{0,63}$")
+_CONTROL_RE = re.compile(r"[\x00-\x08\x0b\x0c\x0e-\x1f\x7f]")
 KEY_MAX = 256
 #: Verdict options a collection may set; thresholds override calibration.
 VERDICT_OPTIONS = (
@@ -281,12 +282,19 @@ class RecallService:
         """Check a memory's fields against the schema; return them normalised for storage."""
         if not isinstance(fields, dict):
             raise RecordInvalid("fields must be an object of field names to values", field="fields")
+        self._check_field_count(len(fields), "the record")
         try:
             codec.encode_record(fields, key=key)
             out: Fields = {}
             for spec in codec.schema.fields:
                 raw = fields.get(spec.name)
                 self._check_text_length(spec.name, raw)
+                if isinstance(raw, str) and _CONTROL_RE.search(raw):
+                    # NUL and friends break exports and some databases' JSON, and no label
+                    # legitimately holds them; tab and line breaks are allowed.
+                    raise RecordInvalid(
+                        f"field {spec.name!r} contains a control character", field=spec.name
+                    )
                 out[spec.name] = (
                     _json_value(codec.normalise(spec.name, raw)) if raw is not None else None
                 )
@@ -297,6 +305,15 @@ class RecallService:
             if isinstance(value, str) and codec.schema.field(name).kind in ("text", "category"):
                 out[name] = value
         return out
+
+    def _check_field_count(self, count: int, what: str) -> None:
+        if count > self.settings.max_fields:
+            raise LimitExceeded(
+                f"{what} has {count} fields, above the limit of {self.settings.max_fields}",
+                limit="max_fields",
+                value=count,
+                maximum=self.settings.max_fields,
+            )
 
     def _check_text_length(self, name: str, value: Any) -> None:
         if isinstance(value, str) and len(value) > self.settings.max_text_length:
@@ -798,6 +815,7 @@ class RecallService:
                 raise CueInvalid(
                     f"cue {i} must be an object of field names to values", field=f"cues[{i}]", cue=i
                 )
+            self._check_field_count(len(cue), f"cue {i}" if len(cues) > 1 else "the cue")
             for fname, value in cue.items():
                 self._check_text_length(fname, value)
             try:
@@ -815,7 +833,7 @@ class RecallService:
             record_energy=options.include_energy,
         )
         verdicts = judge(
-            compiled.rule.patterns_,
+            compiled.rule,
             cue_matrix,
             result,
             compiled.thresholds,

@@ -20,6 +20,7 @@ from sqlalchemy import (
     ForeignKey,
     Index,
     Integer,
+    LargeBinary,
     MetaData,
     String,
     Text,
@@ -30,10 +31,14 @@ from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
 __all__ = [
     "NAMING_CONVENTION",
+    "ApiKey",
+    "AuditEvent",
     "Base",
     "Collection",
     "CompileReport",
     "Memory",
+    "ReconciliationJob",
+    "ReconciliationRow",
     "Team",
     "UTCDateTime",
     "utcnow",
@@ -167,3 +172,104 @@ class CompileReport(Base):
             f"CompileReport(id={self.id!r}, collection_id={self.collection_id!r}, "
             f"revision={self.revision!r})"
         )
+
+
+JOB_STATE_LENGTH = 16
+JOB_FORMAT_LENGTH = 16
+JOB_ID_LENGTH = 36
+JOB_OWNER_LENGTH = 128
+
+
+class ReconciliationJob(Base):
+    """A file of fragments recalled in the background, batch by batch.
+
+    ``rows_done`` and the result rows of a batch are committed together, so after any crash the
+    job resumes exactly where its last committed batch ended. ``owner`` names the worker thread
+    holding a running job (host, process id and a per-runner token); ``updated_at`` is its
+    heartbeat.
+    """
+
+    __tablename__ = "reconciliation_jobs"
+    __table_args__ = (Index(None, "state", "created_at"),)
+
+    id: Mapped[str] = mapped_column(String(JOB_ID_LENGTH), primary_key=True)
+    team_id: Mapped[int] = mapped_column(ForeignKey("teams.id", ondelete="CASCADE"))
+    collection_id: Mapped[int] = mapped_column(ForeignKey("collections.id", ondelete="CASCADE"))
+    state: Mapped[str] = mapped_column(String(JOB_STATE_LENGTH))
+    format: Mapped[str] = mapped_column(String(JOB_FORMAT_LENGTH))
+    input: Mapped[bytes] = mapped_column(LargeBinary)
+    rows_total: Mapped[int] = mapped_column(Integer)
+    rows_done: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
+    counts: Mapped[dict[str, Any]] = mapped_column(JSON)
+    error: Mapped[str | None] = mapped_column(Text, nullable=True)
+    owner: Mapped[str | None] = mapped_column(String(JOB_OWNER_LENGTH), nullable=True)
+    attempts: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime(), default=utcnow)
+    updated_at: Mapped[datetime] = mapped_column(UTCDateTime(), default=utcnow)
+    started_at: Mapped[datetime | None] = mapped_column(UTCDateTime(), nullable=True)
+    finished_at: Mapped[datetime | None] = mapped_column(UTCDateTime(), nullable=True)
+
+    def __repr__(self) -> str:
+        return f"ReconciliationJob(id={self.id!r}, state={self.state!r})"
+
+
+class ReconciliationRow(Base):
+    """One answered fragment of a job; ``row`` is its 1-based position in the input."""
+
+    __tablename__ = "reconciliation_rows"
+
+    job_id: Mapped[str] = mapped_column(
+        ForeignKey("reconciliation_jobs.id", ondelete="CASCADE"), primary_key=True
+    )
+    row: Mapped[int] = mapped_column(Integer, primary_key=True)
+    verdict: Mapped[str] = mapped_column(String(JOB_STATE_LENGTH))
+    # Kept as a column so the job summary can pick the closest calls without reading every row.
+    cue_margin: Mapped[float | None] = mapped_column(Float, nullable=True)
+    data: Mapped[dict[str, Any]] = mapped_column(JSON)
+
+
+KEY_PREFIX_LENGTH = 16
+KEY_HASH_LENGTH = 64
+KEY_LABEL_LENGTH = 128
+AUDIT_ACTION_LENGTH = 64
+
+
+class ApiKey(Base):
+    """A team's API key: only the HMAC of the secret is kept, the prefix names and finds it."""
+
+    __tablename__ = "api_keys"
+    __table_args__ = (Index(None, "team_id", "id"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    team_id: Mapped[int] = mapped_column(ForeignKey("teams.id", ondelete="CASCADE"))
+    prefix: Mapped[str] = mapped_column(String(KEY_PREFIX_LENGTH), unique=True)
+    secret_hash: Mapped[str] = mapped_column(String(KEY_HASH_LENGTH))
+    scopes: Mapped[list[str]] = mapped_column(JSON)
+    label: Mapped[str] = mapped_column(String(KEY_LABEL_LENGTH), default="", server_default="")
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime(), default=utcnow)
+    expires_at: Mapped[datetime | None] = mapped_column(UTCDateTime(), nullable=True)
+    revoked_at: Mapped[datetime | None] = mapped_column(UTCDateTime(), nullable=True)
+    last_used_at: Mapped[datetime | None] = mapped_column(UTCDateTime(), nullable=True)
+
+    def __repr__(self) -> str:
+        # Never the hash: reprs end up in logs and tracebacks.
+        return f"ApiKey(id={self.id!r}, team_id={self.team_id!r}, prefix={self.prefix!r})"
+
+
+class AuditEvent(Base):
+    """One write or admin action: who (team, key prefix), what, on which collection and key."""
+
+    __tablename__ = "audit_events"
+    __table_args__ = (Index(None, "team_id", "id"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    team_id: Mapped[int] = mapped_column(ForeignKey("teams.id", ondelete="CASCADE"))
+    key_prefix: Mapped[str] = mapped_column(String(KEY_PREFIX_LENGTH))
+    action: Mapped[str] = mapped_column(String(AUDIT_ACTION_LENGTH))
+    collection: Mapped[str | None] = mapped_column(String(COLLECTION_NAME_LENGTH), nullable=True)
+    memory_key: Mapped[str | None] = mapped_column(String(MEMORY_KEY_LENGTH), nullable=True)
+    detail: Mapped[dict[str, Any]] = mapped_column(JSON)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime(), default=utcnow)
+
+    def __repr__(self) -> str:
+        return f"AuditEvent(id={self.id!r}, team_id={self.team_id!r}, action={self.action!r})"

@@ -18,6 +18,23 @@ import uvicorn
 
 from service.settings import Settings
 
+
+def make_admin_key(data_dir: Path, team: str = "default") -> str:
+    """A new admin key of ``team`` (created if missing), straight on the server's database."""
+    from service.recall.auth import KeyService, load_pepper
+    from service.storage.db import make_engine, make_session_factory
+
+    settings = Settings(data_dir=data_dir)
+    engine = make_engine(settings.resolved_database_url)
+    try:
+        keys = KeyService(settings, make_session_factory(engine), load_pepper(settings))
+        keys.ensure_team(team)
+        _, secret = keys.create_key(team, ["read", "write", "admin"], label="e2e")
+    finally:
+        engine.dispose()
+    return secret
+
+
 create_app = pytest.importorskip(
     "service.api.app", reason="the HTTP app factory (service/api/app.py) is not written yet"
 ).create_app
@@ -42,6 +59,13 @@ class LiveServer:
         self.port = _free_port()
         self._server: uvicorn.Server | None = None
         self._thread: threading.Thread | None = None
+        self.key: str | None = None
+
+    @property
+    def headers(self) -> dict[str, str]:
+        """The Authorization header of an admin key made at the first start."""
+        assert self.key is not None, "start the server first"
+        return {"Authorization": f"Bearer {self.key}"}
 
     @property
     def url(self) -> str:
@@ -63,6 +87,8 @@ class LiveServer:
                 raise RuntimeError(f"the server on port {self.port} stopped during startup")
             try:
                 if httpx.get(f"{self.url}/healthz", timeout=1.0).status_code == 200:
+                    if self.key is None:
+                        self.key = make_admin_key(self.data_dir)
                     return
             except httpx.TransportError:
                 pass
@@ -109,5 +135,5 @@ def live_server(start_server: Callable[[], LiveServer]) -> LiveServer:
 
 @pytest.fixture
 def client(live_server: LiveServer) -> Iterator[httpx.Client]:
-    with httpx.Client(base_url=live_server.url, timeout=60.0) as http:
+    with httpx.Client(base_url=live_server.url, timeout=60.0, headers=live_server.headers) as http:
         yield http

@@ -22,6 +22,10 @@ class LiveServer(Protocol):
     """What the tests use of conftest's server (test modules cannot import a conftest)."""
 
     data_dir: Path
+    key: str | None
+
+    @property
+    def headers(self) -> dict[str, str]: ...
 
     @property
     def url(self) -> str: ...
@@ -143,12 +147,16 @@ class TestRestart:
         self, live_server: LiveServer
     ) -> None:
         cue = {"name": "hedge trimer", "shelf": "E1"}
-        with httpx.Client(base_url=live_server.url, timeout=60.0) as client:
+        with httpx.Client(
+            base_url=live_server.url, timeout=60.0, headers=live_server.headers
+        ) as client:
             _stock(client, TOOLS)
             compiled = _ok(client.post(f"/v1/collections/{COLLECTION}/compile"))
             before = _recall(client, cue)
         live_server.restart()
-        with httpx.Client(base_url=live_server.url, timeout=60.0) as client:
+        with httpx.Client(
+            base_url=live_server.url, timeout=60.0, headers=live_server.headers
+        ) as client:
             # The first recall after the restart compiles from the database again.
             after = _recall(client, cue)
             recompiled = _ok(client.post(f"/v1/collections/{COLLECTION}/compile"))
@@ -172,7 +180,7 @@ class TestDemoOverHttp:
         records = demo_records()
         rng = random.Random(11)
         fragments = [(key, smudge(fields, rng, keep=4)) for key, fields in records[::100]]
-        with httpx.Client(base_url=server.url, timeout=120.0) as client:
+        with httpx.Client(base_url=server.url, timeout=120.0, headers=server.headers) as client:
             info = _ok(client.get(f"/v1/collections/{DEMO_COLLECTION}"))
             answers = [
                 _ok(client.post(f"/v1/collections/{DEMO_COLLECTION}/recall", json={"cue": cue}))

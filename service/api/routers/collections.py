@@ -6,7 +6,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Body, Path, Response, status
 
-from service.api.deps import CurrentTeam, ServiceDep
+from service.api.deps import AuditDep, CurrentTeam, RequireScope, ServiceDep
 from service.api.examples import openapi_examples, response_examples
 from service.api.schemas import (
     CapacityRead,
@@ -48,6 +48,7 @@ def collection_read(info: CollectionInfo) -> CollectionRead:
     "",
     status_code=status.HTTP_201_CREATED,
     response_model=CollectionRead,
+    dependencies=[RequireScope("admin")],
     responses={
         201: response_examples("CollectionRead"),
         **problem_responses(
@@ -63,6 +64,7 @@ def create_collection(
     body: Annotated[CollectionCreate, Body(openapi_examples=openapi_examples("CollectionCreate"))],
     service: ServiceDep,
     team: CurrentTeam,
+    audit: AuditDep,
     response: Response,
 ) -> CollectionRead:
     """Create a collection."""
@@ -76,6 +78,7 @@ def create_collection(
         seed=body.seed,
     )
     info = service.create_collection(team, spec)
+    audit.record("collection.create", collection=info.name, detail={"rule": info.rule})
     response.headers["Location"] = f"/v1/collections/{info.name}"
     return collection_read(info)
 
@@ -83,6 +86,7 @@ def create_collection(
 @router.get(
     "",
     response_model=CollectionPage,
+    dependencies=[RequireScope("read")],
     responses={200: response_examples("CollectionPage"), **problem_responses()},
 )
 def list_collections(service: ServiceDep, team: CurrentTeam) -> CollectionPage:
@@ -93,6 +97,7 @@ def list_collections(service: ServiceDep, team: CurrentTeam) -> CollectionPage:
 @router.get(
     "/{name}",
     response_model=CollectionRead,
+    dependencies=[RequireScope("read")],
     responses={
         200: response_examples("CollectionRead"),
         **problem_responses("collection-not-found", "invalid-request"),
@@ -106,6 +111,7 @@ def get_collection(name: CollectionPath, service: ServiceDep, team: CurrentTeam)
 @router.patch(
     "/{name}",
     response_model=CollectionRead,
+    dependencies=[RequireScope("admin")],
     responses={
         200: response_examples("CollectionRead"),
         **problem_responses(*BODY_PROBLEMS, "collection-not-found", "invalid-option"),
@@ -116,6 +122,7 @@ def update_collection(
     body: Annotated[CollectionUpdate, Body(openapi_examples=openapi_examples("CollectionUpdate"))],
     service: ServiceDep,
     team: CurrentTeam,
+    audit: AuditDep,
 ) -> CollectionRead:
     """Change a collection's description, rule or verdict options."""
     patch = CollectionPatch(
@@ -128,24 +135,32 @@ def update_collection(
             else None
         ),
     )
-    return collection_read(service.update_collection(team, name, patch))
+    info = service.update_collection(team, name, patch)
+    changed = sorted(body.model_dump(exclude_unset=True))
+    audit.record("collection.update", collection=name, detail={"changed": changed})
+    return collection_read(info)
 
 
 @router.delete(
     "/{name}",
     status_code=status.HTTP_204_NO_CONTENT,
     response_class=Response,
+    dependencies=[RequireScope("admin")],
     responses=problem_responses("collection-not-found", "invalid-request"),
 )
-def delete_collection(name: CollectionPath, service: ServiceDep, team: CurrentTeam) -> Response:
+def delete_collection(
+    name: CollectionPath, service: ServiceDep, team: CurrentTeam, audit: AuditDep
+) -> Response:
     """Delete a collection and all its memories."""
     service.delete_collection(team, name)
+    audit.record("collection.delete", collection=name)
     return Response(status_code=status.HTTP_204_NO_CONTENT)
 
 
 @router.post(
     "/{name}/compile",
     response_model=CompileRead,
+    dependencies=[RequireScope("admin")],
     responses={
         200: response_examples("CompileRead"),
         **problem_responses(
@@ -153,9 +168,16 @@ def delete_collection(name: CollectionPath, service: ServiceDep, team: CurrentTe
         ),
     },
 )
-def compile_collection(name: CollectionPath, service: ServiceDep, team: CurrentTeam) -> CompileRead:
+def compile_collection(
+    name: CollectionPath, service: ServiceDep, team: CurrentTeam, audit: AuditDep
+) -> CompileRead:
     """Compile the collection's memories into its rule's weights now."""
     info = service.compile(team, name)
+    audit.record(
+        "collection.compile",
+        collection=name,
+        detail={"revision": info.revision, "checksum": info.checksum},
+    )
     return CompileRead(
         revision=info.revision,
         rule=info.rule,
@@ -172,6 +194,7 @@ def compile_collection(name: CollectionPath, service: ServiceDep, team: CurrentT
 @router.get(
     "/{name}/capacity",
     response_model=CapacityRead,
+    dependencies=[RequireScope("read")],
     responses={
         200: response_examples("CapacityRead"),
         **problem_responses(

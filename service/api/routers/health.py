@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter
+from fastapi import APIRouter, Request
 from starlette.concurrency import run_in_threadpool
 
 from service.api.deps import SettingsDep
@@ -41,8 +41,15 @@ def _readiness(url: str) -> ReadinessRead:
     response_model=ReadinessRead,
     responses={200: response_examples("ReadinessRead"), **problem_responses("unavailable")},
 )
-async def readyz(settings: SettingsDep) -> ReadinessRead:
+async def readyz(request: Request, settings: SettingsDep) -> ReadinessRead:
     """Answer 200 when the database is reachable and its migrations are at the head."""
+    lifecycle = getattr(request.app.state, "lifecycle", None)
+    if lifecycle is not None and lifecycle.draining:
+        # Checked first: a worker on its way out must leave the pool whatever the database says.
+        raise Unavailable(
+            "the service is shutting down; requests in flight are being finished",
+            shutting_down=True,
+        )
     state = await run_in_threadpool(_readiness, settings.resolved_database_url)
     if not state.ready:
         reason = (

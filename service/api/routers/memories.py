@@ -8,8 +8,8 @@ from typing import Annotated
 from fastapi import APIRouter, Body, Path, Query, Request, Response, status
 from starlette.concurrency import run_in_threadpool
 
-from service.api.bodies import check_utf8, read_capped
-from service.api.deps import CurrentTeam, ServiceDep, SettingsDep
+from service.api.bodies import check_lines, check_utf8, read_capped
+from service.api.deps import AuditDep, CurrentTeam, RequireScope, ServiceDep, SettingsDep
 from service.api.errors import UnsupportedMediaType
 from service.api.examples import openapi_examples, response_examples
 from service.api.parsing import ImportRow, parse_csv, parse_ndjson
@@ -49,6 +49,7 @@ def memory_read(info: MemoryInfo) -> MemoryRead:
 @router.put(
     "/memories/{key:path}",
     response_model=MemoryPutRead,
+    dependencies=[RequireScope("write")],
     responses={
         200: {
             "description": "The memory was replaced.",
@@ -70,10 +71,12 @@ def put_memory(
     body: Annotated[MemoryCreate, Body(openapi_examples=openapi_examples("MemoryCreate"))],
     service: ServiceDep,
     team: CurrentTeam,
+    audit: AuditDep,
     response: Response,
 ) -> MemoryPutRead:
     """Create or replace a memory."""
     result = service.put_memory(team, name, key, dict(body.fields))
+    audit.record("memory.put", collection=name, memory_key=key, detail={"created": result.created})
     response.status_code = status.HTTP_201_CREATED if result.created else status.HTTP_200_OK
     response.headers[REVISION_HEADER] = str(result.revision)
     mem = result.memory
@@ -90,6 +93,7 @@ def put_memory(
 @router.get(
     "/memories/{key:path}",
     response_model=MemoryRead,
+    dependencies=[RequireScope("read")],
     responses={
         200: response_examples("MemoryRead"),
         **problem_responses("collection-not-found", "memory-not-found", "invalid-request"),
@@ -106,13 +110,15 @@ def get_memory(
     "/memories/{key:path}",
     status_code=status.HTTP_204_NO_CONTENT,
     response_class=Response,
+    dependencies=[RequireScope("write")],
     responses=problem_responses("collection-not-found", "memory-not-found", "invalid-request"),
 )
 def delete_memory(
-    name: CollectionPath, key: KeyPath, service: ServiceDep, team: CurrentTeam
+    name: CollectionPath, key: KeyPath, service: ServiceDep, team: CurrentTeam, audit: AuditDep
 ) -> Response:
     """Delete a memory."""
     revision = service.delete_memory(team, name, key)
+    audit.record("memory.delete", collection=name, memory_key=key)
     return Response(
         status_code=status.HTTP_204_NO_CONTENT, headers={REVISION_HEADER: str(revision)}
     )
@@ -121,6 +127,7 @@ def delete_memory(
 @router.get(
     "/memories",
     response_model=MemoryPage,
+    dependencies=[RequireScope("read")],
     responses={
         200: response_examples("MemoryPage"),
         **problem_responses(
@@ -167,6 +174,7 @@ _IMPORT_BODY = {
 @router.post(
     IMPORT_SUFFIX,
     response_model=ImportRead,
+    dependencies=[RequireScope("write")],
     openapi_extra={"requestBody": _IMPORT_BODY},
     responses={
         200: response_examples("ImportRead"),
@@ -187,6 +195,7 @@ async def import_memories(
     service: ServiceDep,
     settings: SettingsDep,
     team: CurrentTeam,
+    audit: AuditDep,
     skip_bad: Annotated[
         bool, Query(description="Store the good rows and report the bad ones.")
     ] = False,
@@ -201,15 +210,21 @@ async def import_memories(
     info = await run_in_threadpool(service.get_collection, team, name)
     raw = await read_capped(request.stream(), settings.max_bulk_body_bytes, "max_bulk_body_bytes")
     check_utf8(raw)
+    check_lines(raw, settings.max_import_line_bytes)
     text = raw.decode("utf-8").removeprefix("\ufeff")
     rows: list[ImportRow]
     if media in CSV_TYPES:
         kinds = {str(f["name"]): str(f["kind"]) for f in info.schema["fields"]}
-        rows = list(parse_csv(text, kinds))
+        rows = list(parse_csv(text, kinds, max_columns=settings.max_fields + 1))
     else:
         rows = list(parse_ndjson(text))
     report = await run_in_threadpool(
         lambda: service.import_memories(team, name, rows, skip_bad=skip_bad)
+    )
+    await audit.arecord(
+        "memory.import",
+        collection=name,
+        detail={"written": report.written, "skipped": report.skipped, "format": media},
     )
     return ImportRead(
         received=report.received,

@@ -16,6 +16,18 @@ from . import problem_responses
 router = APIRouter(prefix="/problems", tags=["problems"])
 
 DESCRIPTIONS: dict[str, str] = {
+    "unauthenticated": "The call needs an API key, sent as 'Authorization: Bearer <key>', and "
+    "none was sent, or the key is malformed, unknown, revoked or expired. The "
+    "WWW-Authenticate header names the scheme.",
+    "forbidden": "The key is valid but lacks the scope this call needs; `scope` names it. "
+    "read: recall, list and read; write: memories and imports; admin: collections, compile, "
+    "keys and the audit log.",
+    "rate-limited": "Too many requests: the key is over its rate (`limit` rate_per_second), or "
+    "this address failed to authenticate too often (`limit` auth_failures_per_minute). The "
+    "Retry-After header and `retry_after` give the seconds to wait.",
+    "key-not-found": "The team has no key with this prefix.",
+    "team-not-found": "There is no team by this name.",
+    "team-exists": "A team by this name already exists.",
     "internal": "The service met an error it did not expect. It has been logged; the answer "
     "holds no details. Retrying may help; if it persists, report the time and path.",
     "not-found": "Nothing exists at this path, or the method and path name no resource.",
@@ -49,6 +61,11 @@ DESCRIPTIONS: dict[str, str] = {
     "method-not-allowed": "The path exists but not with this method; the Allow header lists "
     "the methods it takes.",
     "unsupported-media-type": "The body is sent with a media type this route does not take.",
+    "job-not-found": "The team has no reconciliation job with this id.",
+    "job-finished": "The reconciliation job has ended (done, failed or cancelled), so it cannot "
+    "be cancelled; its result stays readable.",
+    "fragments-rejected": "The fragments file cannot be used as a whole (not UTF-8, or its "
+    "header names a column that is neither 'ref', 'row_id' nor a field); no job was created.",
     "invalid-request": "The request does not match the API's shape: `errors` lists each "
     "failing field with the reason (a missing member, an unknown one, a wrong type, a value "
     "out of bounds).",

@@ -6,7 +6,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Body
 
-from service.api.deps import CurrentTeam, ServiceDep
+from service.api.deps import CurrentTeam, RequireScope, ServiceDep
 from service.api.examples import openapi_examples, response_examples
 from service.api.schemas import (
     DecodedFieldRead,
@@ -77,6 +77,7 @@ def recall_read(result: RecallResult) -> RecallRead:
 @router.post(
     "/recall",
     response_model=RecallRead,
+    dependencies=[RequireScope("read")],
     responses={200: response_examples("RecallRead"), **problem_responses(*RECALL_PROBLEMS)},
 )
 def recall(
@@ -93,6 +94,7 @@ def recall(
 @router.post(
     "/recall:batch",
     response_model=RecallBatchRead,
+    dependencies=[RequireScope("read")],
     responses={
         200: response_examples("RecallBatchRead"),
         **problem_responses(*RECALL_PROBLEMS, "limit-exceeded-batch"),
