@@ -27,7 +27,12 @@ ACCESS_LOGGER: Final = "cuebank.access"
 REQUEST_ID_HEADER: Final = "X-Request-ID"
 _REQUEST_ID_RE: Final = re.compile(r"[A-Za-z0-9._-]{1,64}")
 # Attributes every LogRecord has; anything else on a record was passed through ``extra``.
-_STANDARD: Final = frozenset(vars(logging.makeLogRecord({}))) | {"message", "asctime"}
+# uvicorn adds ``color_message``, the same text with terminal colour codes: noise in JSON.
+_STANDARD: Final = frozenset(vars(logging.makeLogRecord({}))) | {
+    "message",
+    "asctime",
+    "color_message",
+}
 
 access_log = logging.getLogger(ACCESS_LOGGER)
 
@@ -38,6 +43,9 @@ class JsonFormatter(logging.Formatter):
     >>> record = logging.makeLogRecord({"msg": "hi %s", "args": ("there",), "status": 200})
     >>> json.loads(JsonFormatter().format(record))["status"]
     200
+    >>> record = logging.makeLogRecord({"msg": "up", "color_message": "\x1b[36mup\x1b[0m"})
+    >>> "color_message" in json.loads(JsonFormatter().format(record))
+    False
     """
 
     def format(self, record: logging.LogRecord) -> str:
