@@ -583,7 +583,9 @@ def run_demo(args: argparse.Namespace) -> int:
     from service.api.app import create_app
 
     print("Press Ctrl+C to stop.", flush=True)
-    return _run_server(create_app(settings), sock, settings)
+    # the demo's first recall should not wait for the compile
+    served = settings.model_copy(update={"warm_on_start": True})
+    return _run_server(create_app(served), sock, served)
 
 
 def _key_service(settings: Settings) -> tuple[Any, Callable[[], None]]:

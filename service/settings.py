@@ -60,6 +60,13 @@ class Settings(BaseSettings):
             "Requests in flight finish either way."
         ),
     )
+    warm_on_start: bool = Field(
+        default=False,
+        description=(
+            "Compile every collection in the background when a worker starts, so the first "
+            "recall of each does not pay for the compile."
+        ),
+    )
     log_level: Literal["CRITICAL", "ERROR", "WARNING", "INFO", "DEBUG"] = "INFO"
     host: str = "127.0.0.1"
     port: int = Field(default=8000, ge=0, le=65535)

@@ -7,7 +7,9 @@ one :class:`RecallService` every request shares; on shutdown it disposes of the 
 
 from __future__ import annotations
 
+import logging
 import re
+import threading
 from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
 from typing import Any
@@ -70,6 +72,17 @@ def _check_database(url: str, migrate: bool) -> None:
         )
 
 
+def _warm(service: RecallService) -> None:
+    try:
+        count = service.warm()
+    except Exception:  # a warm-up failure must never take the worker down; recall compiles
+        logging.getLogger("cuebank").warning(
+            "warming the compiled-memory cache failed", exc_info=True
+        )
+        return
+    logging.getLogger("cuebank").info("compiled %d collections at start", count)
+
+
 def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
@@ -88,6 +101,11 @@ def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
             # One job runner per app; it resumes jobs a previous process left running.
             runner = JobRunner(app.state.jobs)
             await run_in_threadpool(runner.start)
+            if settings.warm_on_start:
+                # in the background: readiness must not wait for a large compile
+                threading.Thread(
+                    target=_warm, args=(app.state.service,), name="cuebank-warm", daemon=True
+                ).start()
             app.state.lifecycle = lifecycle = Lifecycle(settings.shutdown_drain_seconds)
             lifecycle.install()
             try:

@@ -60,6 +60,7 @@ from .errors import (
     OptionInvalid,
     RecordInvalid,
     SchemaInvalid,
+    ServiceError,
 )
 from .models import (
     CapacityInfo,
@@ -759,6 +760,27 @@ class RecallService:
             capacity=dict(rep.get("capacity", {})),
             compiled_at=datetime.fromisoformat(str(rep["compiled_at"])),
         )
+
+    def warm(self) -> int:
+        """Compile every collection into the cache (largest budget first come, first served).
+
+        Returns how many were compiled; a collection that cannot be compiled (empty, dependent
+        memories) is skipped, its first recall will say why.
+        """
+        with unit_of_work(self.sessions, write=False) as session:
+            ids = [c.id for c in CollectionRepository(session).list_all()]
+        done = 0
+        for coll_id in ids:
+            try:
+                with unit_of_work(self.sessions, write=False) as session:
+                    coll = CollectionRepository(session).get_by_id(coll_id)
+                    if coll is None:
+                        continue
+                    self._compiled(session, coll)
+                    done += 1
+            except ServiceError:
+                continue
+        return done
 
     def capacity(self, team: str, name: str) -> CapacityInfo:
         with unit_of_work(self.sessions, write=False) as session:

@@ -141,6 +141,11 @@ class CollectionRepository:
         stmt = select(Collection).where(Collection.team_id == team_id).order_by(Collection.name)
         return builtins.list(self.session.scalars(stmt))
 
+    def list_all(self) -> builtins.list[Collection]:
+        """Every team's collections, for maintenance such as warming caches."""
+        stmt = select(Collection).order_by(Collection.team_id, Collection.name)
+        return builtins.list(self.session.scalars(stmt))
+
     def update(
         self,
         collection: Collection,
