@@ -31,6 +31,8 @@ from .bodies import BodyLimitMiddleware
 from .errors import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_error_handlers
 from .lifecycle import Lifecycle
 from .logs import RequestLogMiddleware
+from .metrics import Metrics
+from .metrics import router as metrics_router
 from .routers import collections, health, keys, memories, problems, recall, reconciliations
 from .security import AuthMiddleware, FailureLimiter, TokenBuckets, document_security
 
@@ -149,6 +151,7 @@ def create_app(settings: Settings, *, migrate: bool = False) -> FastAPI:
         redoc_url=None,
     )
     app.state.settings = settings
+    app.state.metrics = Metrics(app)
     install_error_handlers(app)
     app.include_router(collections.router)
     app.include_router(memories.router)
@@ -156,6 +159,7 @@ def create_app(settings: Settings, *, migrate: bool = False) -> FastAPI:
     app.include_router(reconciliations.router)
     app.include_router(keys.router)
     app.include_router(health.router)
+    app.include_router(metrics_router)
     app.include_router(problems.router)
     app.include_router(docs.router)
     # A body is capped before any route reads it; the last middleware added is the outermost,

@@ -107,6 +107,14 @@ class RequestLogMiddleware:
         try:
             await self.app(scope, receive, send_with_id)
         finally:
+            metrics = getattr(getattr(scope.get("app"), "state", None), "metrics", None)
+            if metrics is not None:
+                metrics.observe(
+                    scope["method"],
+                    _route_template(scope) or "(no route)",
+                    status,
+                    time.perf_counter() - started,
+                )
             principal = state.get("principal")
             client = scope.get("client")
             access_log.info(

@@ -50,7 +50,7 @@ __all__ = [
 SECURITY_SCHEME: Final = "bearerAuth"
 
 #: Paths anyone may call: probes, the API description and the problem-type pages.
-PUBLIC_PATHS: Final = frozenset({"/healthz", "/readyz", "/docs", "/openapi.json"})
+PUBLIC_PATHS: Final = frozenset({"/healthz", "/readyz", "/metrics", "/docs", "/openapi.json"})
 PUBLIC_PREFIXES: Final = ("/docs/", "/problems/")
 #: Addresses (failure windows) or keys (buckets) remembered at most, so a flood of new ones
 #: cannot grow a worker's memory without bound.

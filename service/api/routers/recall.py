@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from fastapi import APIRouter, Body
+from fastapi import APIRouter, Body, Request
 
 from service.api.deps import CurrentTeam, RequireScope, ServiceDep
 from service.api.examples import openapi_examples, response_examples
@@ -74,6 +74,12 @@ def recall_read(result: RecallResult) -> RecallRead:
     )
 
 
+def _count(request: Request, results: list[RecallResult]) -> None:
+    verdicts = request.app.state.metrics.verdicts
+    for r in results:
+        verdicts.labels(r.verdict, r.reason).inc()
+
+
 @router.post(
     "/recall",
     response_model=RecallRead,
@@ -81,6 +87,7 @@ def recall_read(result: RecallResult) -> RecallRead:
     responses={200: response_examples("RecallRead"), **problem_responses(*RECALL_PROBLEMS)},
 )
 def recall(
+    request: Request,
     name: CollectionPath,
     body: Annotated[RecallRequest, Body(openapi_examples=openapi_examples("RecallRequest"))],
     service: ServiceDep,
@@ -88,6 +95,7 @@ def recall(
 ) -> RecallRead:
     """Recall the memory a cue belongs to."""
     [result] = service.recall(team, name, [dict(body.cue)], _options(body.options))
+    _count(request, [result])
     return recall_read(result)
 
 
@@ -101,6 +109,7 @@ def recall(
     },
 )
 def recall_batch(
+    request: Request,
     name: CollectionPath,
     body: Annotated[
         RecallBatchRequest, Body(openapi_examples=openapi_examples("RecallBatchRequest"))
@@ -110,4 +119,5 @@ def recall_batch(
 ) -> RecallBatchRead:
     """Recall several cues at once; results come in the order of the cues."""
     results = service.recall(team, name, [dict(c) for c in body.cues], _options(body.options))
+    _count(request, results)
     return RecallBatchRead(results=[recall_read(r) for r in results])
