@@ -60,6 +60,15 @@ class Settings(BaseSettings):
             "Requests in flight finish either way."
         ),
     )
+    recall_batch_window_ms: float = Field(
+        default=1.0,
+        ge=0.0,
+        le=50.0,
+        description=(
+            "How long a single-cue recall waits for concurrent ones on the same collection to "
+            "share one matrix product; 0 turns micro-batching off."
+        ),
+    )
     warm_on_start: bool = Field(
         default=False,
         description=(

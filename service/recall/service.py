@@ -46,6 +46,7 @@ from service.storage.repositories import (
     TeamRepository,
 )
 
+from .batching import RecallBatcher
 from .compiled import CompiledCache, CompiledMemory, FieldCandidates
 from .errors import (
     CollectionExists,
@@ -148,6 +149,7 @@ class RecallService:
         self.settings = settings
         self.sessions = sessions
         self.cache = CompiledCache(settings.cache_bytes)
+        self._batcher = RecallBatcher(max_batch=64)
 
     # ------------------------------------------------------------------ helpers
 
@@ -846,6 +848,36 @@ class RecallService:
                 where = f"cue {i}: " if len(cues) > 1 else ""
                 raise CueInvalid(f"{where}{exc}", field=exc.field, cue=i) from None
         cue_matrix = np.stack(encoded)
+        window = self.settings.recall_batch_window_ms / 1000.0
+        if len(cues) == 1 and window > 0 and not options.include_energy:
+            # concurrent single-cue recalls of one compiled memory share one product
+            key = (
+                id(compiled),
+                compiled.revision,
+                options.mode,
+                options.clamp,
+                steps,
+                options.top_k,
+            )
+            return [
+                self._batcher.submit(
+                    key,
+                    cue_matrix[0],
+                    lambda m: self._execute(compiled, m, options, steps),
+                    window,
+                )
+            ]
+        return self._execute(compiled, cue_matrix, options, steps)
+
+    def _execute(
+        self,
+        compiled: CompiledMemory,
+        cue_matrix: np.ndarray,
+        options: RecallOptions,
+        steps: int,
+    ) -> list[RecallResult]:
+        """Settle, judge and decode already-encoded cues against one compiled memory."""
+        codec = compiled.codec
         result = settle(
             compiled.rule,
             cue_matrix,
@@ -864,7 +896,7 @@ class RecallService:
         )
         decoded = self._decode(compiled, result.states, verdicts.best)
         out: list[RecallResult] = []
-        for i in range(len(cues)):
+        for i in range(cue_matrix.shape[0]):
             v = verdicts[i]
             best_key = compiled.keys[v.best]
             memory = None
