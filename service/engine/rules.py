@@ -38,7 +38,7 @@ from typing import Any, ClassVar, Self
 import numpy as np
 from numpy.typing import NDArray
 
-from ._checks import as_cues, as_patterns, check_float, check_int
+from ._checks import as_patterns, check_float, check_int
 from .errors import DependentMemoryError, EmptyMemoryError, ParameterError
 
 __all__ = [
@@ -70,6 +70,8 @@ class MemoryRule:
     #: Whether the weights are symmetric, which is what guarantees that ``async`` settling
     #: never raises the energy and ``sync`` ends in a fixed point or a 2-cycle.
     symmetric: ClassVar[bool] = True
+    #: Whether :meth:`remove` forgets one memory incrementally (Storkey's rule cannot).
+    supports_remove: ClassVar[bool] = True
 
     patterns_: I8
 
@@ -292,6 +294,7 @@ class StorkeyRule(_MatrixRule):
     """
 
     name = "storkey"
+    supports_remove = False
 
     def __init__(self, *, keep_diagonal: bool = False) -> None:
         if not isinstance(keep_diagonal, bool):
@@ -790,8 +793,3 @@ def make_rule(name: str, **options: Any) -> MemoryRule:
             f"rule {name!r} has no option {', '.join(map(repr, bad))}; "
             f"its options are: {', '.join(allowed) or 'none'}"
         ) from None
-
-
-def _as_states(states: Any, n_units: int) -> F32:
-    """Validate a batch of states in {-1, 0, +1} and return float32 (used by callers)."""
-    return as_cues(states, "states", n_units=n_units).astype(np.float32)

@@ -49,7 +49,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -405,10 +405,3 @@ def field_agreement(
         agree = np.einsum("ij,ij->i", states[:, b], cb) / np.maximum(known, 1)
         out = np.where(known > 0, np.minimum(out, agree), out)
     return np.where(np.isfinite(out), out, 1.0)
-
-
-def with_defaults(
-    thresholds: VerdictThresholds | None, **overrides: float | None
-) -> VerdictThresholds:
-    """A copy of ``thresholds`` with the given fields replaced."""
-    return replace(thresholds or VerdictThresholds(), **overrides)

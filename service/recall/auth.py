@@ -24,8 +24,6 @@ True
 
 from __future__ import annotations
 
-import base64
-import binascii
 import hashlib
 import hmac
 import os
@@ -47,6 +45,7 @@ from service.storage.models import ApiKey, AuditEvent
 from service.storage.repositories import TeamRepository
 
 from .errors import CursorInvalid, LimitExceeded, OptionInvalid, ServiceError
+from .paging import decode_cursor, encode_cursor, page_size
 
 __all__ = [
     "AUTH_PROBLEM_TYPES",
@@ -290,20 +289,16 @@ def _audit_info(event: AuditEvent) -> AuditInfo:
 
 
 def _encode_cursor(event_id: int) -> str:
-    return base64.urlsafe_b64encode(f"a1:{event_id}".encode()).decode("ascii").rstrip("=")
+    return encode_cursor("a1", str(event_id))
 
 
 def _decode_cursor(cursor: str) -> int:
-    try:
-        raw = base64.urlsafe_b64decode((cursor + "=" * (-len(cursor) % 4)).encode("ascii"))
-        text = raw.decode("ascii")
-        if not text.startswith("a1:") or not text[3:].isdigit() or len(text) > 24:
-            raise ValueError(text)
-        return int(text[3:])
-    except (ValueError, binascii.Error, UnicodeError):
+    position = decode_cursor("a1", cursor)
+    if not position.isdigit() or len(position) > 20:
         raise CursorInvalid(
             "the cursor is not one this service issued; start again without one", field="cursor"
-        ) from None
+        )
+    return int(position)
 
 
 @dataclass
@@ -499,16 +494,7 @@ class KeyService:
             )
 
     def audit_page(self, team_id: int, cursor: str | None, limit: int | None) -> AuditPage:
-        size = self.settings.default_page_size if limit is None else limit
-        if size < 1:
-            raise OptionInvalid(f"limit must be a positive integer, got {limit!r}", field="limit")
-        if size > self.settings.max_page_size:
-            raise LimitExceeded(
-                f"limit is {size}, above the page size limit of {self.settings.max_page_size}",
-                limit="max_page_size",
-                value=size,
-                maximum=self.settings.max_page_size,
-            )
+        size = page_size(self.settings, limit)
         before = _decode_cursor(cursor) if cursor else None
         with unit_of_work(self.sessions, write=False) as session:
             rows = AuditRepository(session).page(team_id, before, size)

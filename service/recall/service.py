@@ -27,8 +27,8 @@ from service.engine import (
     ParameterError,
     RecordError,
     SchemaError,
-    StorkeyRule,
     VerdictThresholds,
+    calibrate,
     capacity_report,
     judge,
     make_rule,
@@ -52,7 +52,6 @@ from .errors import (
     CollectionExists,
     CollectionNotFound,
     CueInvalid,
-    CursorInvalid,
     DependentMemories,
     EmptyCollection,
     ImportRejected,
@@ -82,6 +81,7 @@ from .models import (
     RecallResult,
     RowError,
 )
+from .paging import decode_cursor, encode_cursor, page_size
 
 __all__ = ["DEFAULT_TEAM", "RecallService"]
 
@@ -137,8 +137,6 @@ def _json_value(value: Any) -> FieldValue:
     """A normalised codec value as stored and returned in JSON."""
     if isinstance(value, date):
         return value.isoformat()
-    if isinstance(value, float) and value.is_integer() and abs(value) < 2**53:
-        return value
     return value  # type: ignore[no-any-return]
 
 
@@ -470,24 +468,15 @@ class RecallService:
     def list_memories(
         self, team: str, name: str, cursor: str | None, limit: int | None
     ) -> MemoryPage:
-        size = self.settings.default_page_size if limit is None else limit
-        if isinstance(size, bool) or not isinstance(size, int) or size < 1:
-            raise OptionInvalid(f"limit must be a positive integer, got {limit!r}", field="limit")
-        if size > self.settings.max_page_size:
-            raise LimitExceeded(
-                f"limit is {size}, above the page size limit of {self.settings.max_page_size}",
-                limit="max_page_size",
-                value=size,
-                maximum=self.settings.max_page_size,
-            )
-        after = decode_cursor(cursor) if cursor else None
+        size = page_size(self.settings, limit)
+        after = decode_cursor("k1", cursor) if cursor else None
         with unit_of_work(self.sessions, write=False) as session:
             coll = self._collection(session, team, name)
             page = MemoryRepository(session).page(coll.id, after, size)
             items = [
                 MemoryInfo(m.key, dict(m.fields), m.created_at, m.updated_at) for m in page.items
             ]
-            nxt = encode_cursor(page.next_after) if page.next_after is not None else None
+            nxt = encode_cursor("k1", page.next_after) if page.next_after is not None else None
             return MemoryPage(items=items, next_cursor=nxt)
 
     def import_memories(
@@ -629,8 +618,6 @@ class RecallService:
         keys: list[str],
         seed: int,
     ) -> tuple[VerdictThresholds, dict[str, Any]]:
-        from service.engine.calibration import calibrate
-
         calibration: dict[str, Any] = {}
         base = VerdictThresholds()
         if options.get("calibrate", True) and len(keys) >= MIN_CALIBRATION_MEMORIES:
@@ -683,7 +670,8 @@ class RecallService:
         cached = self.cache.get(collection_id)
         if cached is None:
             return
-        if cached.revision != revision - 1 or (isinstance(cached.rule, StorkeyRule) and deletes):
+        removes = bool(deletes) or any(key in cached.index for key, _ in upserts)
+        if cached.revision != revision - 1 or (removes and not cached.rule.supports_remove):
             self.cache.discard(collection_id)
             return
         grown = len(cached.keys) + len(upserts)
@@ -705,8 +693,6 @@ class RecallService:
                     del fields[i]
             for key, rec in upserts:
                 if key in keys:
-                    if isinstance(rule, StorkeyRule):
-                        raise NotImplementedError
                     i = keys.index(key)
                     rule.remove(i)
                     del keys[i]
@@ -714,7 +700,7 @@ class RecallService:
                 rule.add(cached.codec.encode_record(rec, key=key))
                 keys.append(key)
                 fields.append(dict(rec))
-        except (NotImplementedError, EngineError):
+        except EngineError:
             self.cache.discard(collection_id)
             return
         updated = cached.with_rule(
@@ -950,30 +936,3 @@ class RecallService:
                     value=cand.values[int(j)], score=round(m, 6), z=round(math.sqrt(d) * m, 3)
                 )
         return per_cue
-
-
-# ---------------------------------------------------------------------- cursors
-
-
-def encode_cursor(after_key: str) -> str:
-    """An opaque page cursor: the last key of the page, URL-safe base64 with a version tag."""
-    import base64
-
-    raw = b"k1:" + after_key.encode("utf-8")
-    return base64.urlsafe_b64encode(raw).decode("ascii").rstrip("=")
-
-
-def decode_cursor(cursor: str) -> str:
-    import base64
-    import binascii
-
-    try:
-        padded = cursor + "=" * (-len(cursor) % 4)
-        raw = base64.urlsafe_b64decode(padded.encode("ascii"))
-        if not raw.startswith(b"k1:"):
-            raise ValueError("unknown cursor version")
-        return raw[3:].decode("utf-8")
-    except (ValueError, binascii.Error, UnicodeError):
-        raise CursorInvalid(
-            f"cursor {cursor[:40]!r} is not a cursor this service issued", field="cursor"
-        ) from None
