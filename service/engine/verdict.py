@@ -261,12 +261,13 @@ def judge(
     -------
     VerdictBatch
     """
+    rule: MemoryRule | None = None
     if isinstance(patterns, MemoryRule):
-        check_fitted_rule(patterns)
-        xf = patterns.patterns_f32_
+        rule = check_fitted_rule(patterns)
+        n_mem, n_units = rule.n_memories_, rule.n_units_
     else:
         xf = as_patterns(patterns, "patterns").astype(np.float32)
-    n_mem, n_units = xf.shape
+        n_mem, n_units = xf.shape
     c = as_cues(cues, "cues", n_units=n_units)
     if not isinstance(result, SettleResult):
         raise ParameterError(f"result must be what settle() returned, got {type(result).__name__}")
@@ -292,10 +293,15 @@ def judge(
     cf = c.astype(np.float32)
     n_known = np.maximum(np.count_nonzero(c, axis=1), 1).astype(np.float64)
 
-    overlaps = (sf @ xf.T) / np.float32(n_units)  # (B, P), exact up to rounding of 1/N
+    # States and cues in one product: one pass over the patterns instead of two (the dot
+    # products are integers, exact in float32, so sharing the product changes no value).
+    n_states = sf.shape[0]
+    both = np.concatenate([sf, cf])
+    dots = rule.pattern_dots(both) if rule is not None else both @ xf.T
+    overlaps = dots[:n_states] / np.float32(n_units)  # (B, P), exact up to rounding of 1/N
     best, m_best, m_second = _top2(overlaps)
     m_min = overlaps.min(axis=1).astype(np.float64)
-    cue_ov = (cf @ xf.T) / n_known[:, None].astype(np.float32)
+    cue_ov = dots[n_states:] / n_known[:, None].astype(np.float32)
     cue_best, c_best, c_second = _top2(cue_ov)
     agreement = np.einsum("ij,ij->i", sf, cf).astype(np.float64) / n_known
     field_agr = field_agreement(sf, cf, _check_blocks(blocks, n_units)) if blocks else agreement
