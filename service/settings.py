@@ -60,13 +60,25 @@ class Settings(BaseSettings):
             "Requests in flight finish either way."
         ),
     )
-    recall_batch_window_ms: float = Field(
-        default=1.0,
+    key_cache_seconds: float = Field(
+        default=5.0,
         ge=0.0,
-        le=50.0,
+        le=300.0,
         description=(
-            "How long a single-cue recall waits for concurrent ones on the same collection to "
-            "share one matrix product; 0 turns micro-batching off."
+            "How long a worker keeps accepting an API key it has checked without asking the "
+            "database again. A key revoked through another worker (or the CLI) stops working "
+            "on this one within this time; the worker that revokes it stops at once. 0 checks "
+            "every request against the database."
+        ),
+    )
+    recall_batch_max: int = Field(
+        default=64,
+        ge=1,
+        le=1024,
+        description=(
+            "The most concurrent single-cue recalls on one collection settled together in one "
+            "matrix product (they queue while the previous product runs; none waits for "
+            "company). 1 settles every cue alone."
         ),
     )
     warm_on_start: bool = Field(

@@ -21,12 +21,14 @@ from starlette.concurrency import run_in_threadpool
 
 from service.recall.auth import KeyService, PepperMissing, load_pepper
 from service.recall.jobs import JobRunner, ReconciliationService
+from service.recall.models import RecallResult
 from service.recall.service import RecallService
 from service.settings import Settings
 from service.storage.db import make_engine, make_session_factory
 from service.storage.migrate import current_revision, head_revision, upgrade_to_head
 
 from . import docs
+from .batching import RecallQueue
 from .bodies import BodyLimitMiddleware
 from .errors import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_error_handlers
 from .lifecycle import Lifecycle
@@ -34,6 +36,7 @@ from .logs import RequestLogMiddleware
 from .metrics import Metrics
 from .metrics import router as metrics_router
 from .routers import collections, health, keys, memories, problems, recall, reconciliations
+from .routers.recall import RecallKey
 from .security import AuthMiddleware, FailureLimiter, TokenBuckets, document_security
 
 __all__ = ["DatabaseNotReady", "create_app"]
@@ -97,7 +100,11 @@ def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
         engine = make_engine(url, sqlite_synchronous=settings.sqlite_synchronous)
         try:
             app.state.engine = engine
-            app.state.service = RecallService(settings, make_session_factory(engine))
+            app.state.service = service = RecallService(settings, make_session_factory(engine))
+            app.state.recall_queue = RecallQueue[RecallKey, RecallResult](
+                lambda key, cues: service.recall_each(key[0], key[1], cues, key[2]),
+                max_batch=settings.recall_batch_max,
+            )
             app.state.keys = KeyService(settings, make_session_factory(engine), pepper)
             app.state.jobs = ReconciliationService(app.state.service)
             # One job runner per app; it resumes jobs a previous process left running.

@@ -174,7 +174,12 @@ class AuthMiddleware:
                 )
         keys: KeyService = scope["app"].state.keys
         try:
-            principal = await run_in_threadpool(keys.authenticate, authorization)
+            cached = keys.recently_accepted(authorization)
+            principal = (
+                cached
+                if cached is not None
+                else await run_in_threadpool(keys.authenticate, authorization)
+            )
         except Unauthenticated:
             if authorization is not None:
                 self.failures.failed(address)

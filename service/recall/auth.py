@@ -82,6 +82,8 @@ LABEL_MAX: Final = 128
 MAX_EXPIRY_DAYS: Final = 3650
 #: A key's last use is written at most this often, so a busy key costs no write per request.
 TOUCH_INTERVAL: Final = timedelta(minutes=1)
+#: Accepted keys a worker remembers at most (see ``KeyService.recently_accepted``).
+MAX_ACCEPTED_CACHED: Final = 10_000
 PEPPER_FILE: Final = "key_pepper"
 #: The prefix recorded in the audit log for actions taken with the command line.
 CLI_ACTOR: Final = "cli"
@@ -311,8 +313,44 @@ class KeyService:
     # The hash compared against when a prefix is unknown, so an unknown key costs the same
     # work as a known one and timing tells nothing about which prefixes exist.
     _decoy: str = field(default="0" * 64, init=False, repr=False)
+    # Keys accepted lately, by secret hash: (principal, accepted until). Only successes are
+    # kept, so a revocation elsewhere takes effect within ``settings.key_cache_seconds``.
+    _accepted: dict[str, tuple[Principal, datetime]] = field(
+        default_factory=dict, init=False, repr=False
+    )
 
     # ------------------------------------------------------------------ authentication
+
+    def recently_accepted(self, authorization: str | None) -> Principal | None:
+        """The principal if this worker accepted the same key within the cache time, else None.
+
+        No database and no I/O: cheap enough for the event loop. None means "ask
+        :meth:`authenticate`", never "refused".
+        """
+        if not authorization or not self._accepted:
+            return None
+        scheme, _, token = authorization.strip().partition(" ")
+        if scheme.lower() != "bearer" or not token.strip():
+            return None
+        hit = self._accepted.get(hash_secret(self.pepper, token.strip()))
+        if hit is None:
+            return None
+        principal, until = hit
+        return principal if _now() < until else None
+
+    def _remember(self, digest: str, principal: Principal, expires_at: datetime | None) -> None:
+        ttl = self.settings.key_cache_seconds
+        if ttl <= 0:
+            return
+        now = _now()
+        until = now + timedelta(seconds=ttl)
+        if expires_at is not None:
+            until = min(until, expires_at)
+        if len(self._accepted) >= MAX_ACCEPTED_CACHED:
+            self._accepted = {d: v for d, v in self._accepted.items() if v[1] > now}
+            if len(self._accepted) >= MAX_ACCEPTED_CACHED:
+                self._accepted.clear()
+        self._accepted[digest] = (principal, until)
 
     def authenticate(self, authorization: str | None) -> Principal:
         """The principal of an ``Authorization: Bearer <key>`` header value, or raise."""
@@ -345,6 +383,7 @@ class KeyService:
             principal = Principal(team.name, team.id, key.prefix, frozenset(key.scopes))
             stale = key.last_used_at is None or now - key.last_used_at >= TOUCH_INTERVAL
             key_id = key.id
+            self._remember(digest, principal, key.expires_at)
         if stale:
             with unit_of_work(self.sessions, write=True) as session:
                 ApiKeyRepository(session).touch(key_id, now)
@@ -446,6 +485,7 @@ class KeyService:
             if key is None or owner is None or (team is not None and owner.name != team):
                 raise KeyNotFound(f"there is no key {prefix[:PREFIX_LENGTH]!r}", prefix=None)
             keys.revoke(key, now)
+            self._accepted.clear()  # this worker stops accepting it at once
             AuditRepository(session).add(
                 owner.id, key_prefix=actor, action="key.revoke", detail={"prefix": key.prefix}
             )

@@ -60,7 +60,7 @@ class CompiledMemory:
     @property
     def nbytes(self) -> int:
         cand = sum(c.codes.nbytes for c in self.candidates.values())
-        return int(self.rule.weight_bytes_ + self.rule.patterns_.nbytes + cand)
+        return int(self.rule.held_bytes_ + cand)
 
     def with_rule(self, **changes: Any) -> CompiledMemory:
         """A shallow copy with the given members replaced."""

@@ -46,7 +46,6 @@ from service.storage.repositories import (
     TeamRepository,
 )
 
-from .batching import RecallBatcher
 from .compiled import CompiledCache, CompiledMemory, FieldCandidates
 from .errors import (
     CollectionExists,
@@ -147,7 +146,6 @@ class RecallService:
         self.settings = settings
         self.sessions = sessions
         self.cache = CompiledCache(settings.cache_bytes)
-        self._batcher = RecallBatcher(max_batch=64)
 
     # ------------------------------------------------------------------ helpers
 
@@ -785,20 +783,7 @@ class RecallService:
 
     # ------------------------------------------------------------------ recall
 
-    def recall(
-        self, team: str, name: str, cues: Sequence[Any], options: RecallOptions
-    ) -> list[RecallResult]:
-        """Settle each cue and judge where it landed; results in the order of the cues."""
-        if not cues:
-            raise CueInvalid("at least one cue is needed", field="cues")
-        if len(cues) > self.settings.max_batch:
-            raise LimitExceeded(
-                f"{len(cues)} cues in one batch, above the limit of {self.settings.max_batch}",
-                limit="max_batch",
-                value=len(cues),
-                maximum=self.settings.max_batch,
-                status=413,
-            )
+    def _check_options(self, options: RecallOptions) -> None:
         if options.mode not in ("sync", "async"):
             raise OptionInvalid(f"mode must be sync or async, got {options.mode!r}", field="mode")
         if (
@@ -809,51 +794,92 @@ class RecallService:
             raise OptionInvalid(
                 f"top_k must be an integer from 1 to 100, got {options.top_k!r}", field="top_k"
             )
+
+    def _current(self, team: str, name: str, options: RecallOptions) -> tuple[CompiledMemory, int]:
+        """The collection's compiled memory at its current revision, and the step limit.
+
+        One light query reads the revision, so a write on any worker is seen by the very next
+        recall; the ORM path (and a compile) runs only when the cache is behind or the
+        collection is missing.
+        """
         with unit_of_work(self.sessions, write=False) as session:
-            coll = self._collection(session, team, name)
-            default_steps = coll.verdict_options.get("max_steps")
-            steps = self._check_steps(
-                options.max_steps
-                if options.max_steps is not None
-                else (default_steps or min(100, self.settings.max_steps))
+            current = CollectionRepository(session).revision_of(team, name)
+            cached = self.cache.get(current.id) if current is not None else None
+            if current is not None and cached is not None and cached.revision == current.revision:
+                compiled, verdict_options = cached, current.verdict_options
+            else:
+                coll = self._collection(session, team, name)
+                compiled, verdict_options = self._compiled(session, coll), coll.verdict_options
+        default_steps = verdict_options.get("max_steps")
+        steps = self._check_steps(
+            options.max_steps
+            if options.max_steps is not None
+            else (default_steps or min(100, self.settings.max_steps))
+        )
+        return compiled, steps
+
+    def _encode_cue(self, codec: Codec, cue: Any, i: int, n_cues: int) -> np.ndarray:
+        """Cue ``i`` of ``n_cues`` encoded, or :class:`CueInvalid` naming it."""
+        if not isinstance(cue, dict):
+            raise CueInvalid(
+                f"cue {i} must be an object of field names to values", field=f"cues[{i}]", cue=i
             )
-            compiled = self._compiled(session, coll)
-        codec = compiled.codec
-        encoded = []
+        self._check_field_count(len(cue), f"cue {i}" if n_cues > 1 else "the cue")
+        for fname, value in cue.items():
+            self._check_text_length(fname, value)
+        try:
+            return codec.encode_cue(cue)
+        except RecordError as exc:
+            where = f"cue {i}: " if n_cues > 1 else ""
+            raise CueInvalid(f"{where}{exc}", field=exc.field, cue=i) from None
+
+    def recall(
+        self, team: str, name: str, cues: Sequence[Any], options: RecallOptions
+    ) -> list[RecallResult]:
+        """Settle each cue and judge where it landed; results in the order of the cues.
+
+        One invalid cue refuses the whole call (:class:`CueInvalid` names it).
+        """
+        if not cues:
+            raise CueInvalid("at least one cue is needed", field="cues")
+        if len(cues) > self.settings.max_batch:
+            raise LimitExceeded(
+                f"{len(cues)} cues in one batch, above the limit of {self.settings.max_batch}",
+                limit="max_batch",
+                value=len(cues),
+                maximum=self.settings.max_batch,
+                status=413,
+            )
+        self._check_options(options)
+        compiled, steps = self._current(team, name, options)
+        encoded = [self._encode_cue(compiled.codec, c, i, len(cues)) for i, c in enumerate(cues)]
+        return self._execute(compiled, np.stack(encoded), options, steps)
+
+    def recall_each(
+        self, team: str, name: str, cues: Sequence[Any], options: RecallOptions
+    ) -> list[RecallResult | ServiceError]:
+        """Independent single-cue recalls settled together in one product.
+
+        Each cue is judged as if it came alone (results are the same as one call each); an
+        invalid cue gets its own :class:`CueInvalid` in its place and the others are answered.
+        Errors of the collection or the options apply to all and are raised.
+        """
+        self._check_options(options)
+        compiled, steps = self._current(team, name, options)
+        refused: dict[int, ServiceError] = {}
+        encoded: list[np.ndarray] = []
         for i, cue in enumerate(cues):
-            if not isinstance(cue, dict):
-                raise CueInvalid(
-                    f"cue {i} must be an object of field names to values", field=f"cues[{i}]", cue=i
-                )
-            self._check_field_count(len(cue), f"cue {i}" if len(cues) > 1 else "the cue")
-            for fname, value in cue.items():
-                self._check_text_length(fname, value)
             try:
-                encoded.append(codec.encode_cue(cue))
-            except RecordError as exc:
-                where = f"cue {i}: " if len(cues) > 1 else ""
-                raise CueInvalid(f"{where}{exc}", field=exc.field, cue=i) from None
-        cue_matrix = np.stack(encoded)
-        window = self.settings.recall_batch_window_ms / 1000.0
-        if len(cues) == 1 and window > 0 and not options.include_energy:
-            # concurrent single-cue recalls of one compiled memory share one product
-            key = (
-                id(compiled),
-                compiled.revision,
-                options.mode,
-                options.clamp,
-                steps,
-                options.top_k,
-            )
-            return [
-                self._batcher.submit(
-                    key,
-                    cue_matrix[0],
-                    lambda m: self._execute(compiled, m, options, steps),
-                    window,
-                )
-            ]
-        return self._execute(compiled, cue_matrix, options, steps)
+                encoded.append(self._encode_cue(compiled.codec, cue, 0, 1))
+            except ServiceError as exc:
+                refused[i] = exc
+        answered = iter(
+            self._execute(compiled, np.stack(encoded), options, steps) if encoded else []
+        )
+        out: list[RecallResult | ServiceError] = [
+            refused[i] if i in refused else next(answered) for i in range(len(cues))
+        ]
+        return out
 
     def _execute(
         self,
@@ -921,18 +947,28 @@ class RecallService:
         slices = compiled.codec.schema.slices
         per_cue: list[dict[str, DecodedField]] = [{} for _ in range(states.shape[0])]
         sf = states.astype(np.float32)
-        rows = np.arange(states.shape[0])
         for name, cand in compiled.candidates.items():
             block = sf[:, slices[name]]
             d = block.shape[1]
-            scores = block @ cand.codes.T / np.float32(d)  # (B, n_values)
-            # on equal scores, the nearest memory's own value wins
-            ranked = scores.astype(np.float64)
-            ranked[rows, cand.of_memory[nearest]] += 1e-9
-            best = np.argmax(ranked, axis=1)
-            for i, j in enumerate(best):
-                m = float(scores[i, j])
+            own = cand.of_memory[nearest]  # each state's nearest memory's own value
+            # Where a block is exactly that value's code, the value scores the maximum, 1, and
+            # wins the tie rule below: the answer is known without the product (the common
+            # case, a settled state on a stored memory).
+            exact = (block == cand.codes[own]).all(axis=1)
+            best = own.copy()
+            scores = np.ones(len(best), dtype=np.float64)
+            rows = np.flatnonzero(~exact)
+            if rows.size:
+                full = block[rows] @ cand.codes.T / np.float32(d)  # (rows, n_values)
+                # on equal scores, the nearest memory's own value wins
+                ranked = full.astype(np.float64)
+                ranked[np.arange(rows.size), own[rows]] += 1e-9
+                picked = np.argmax(ranked, axis=1)
+                best[rows] = picked
+                scores[rows] = full[np.arange(rows.size), picked]
+            root = math.sqrt(d)
+            for i, (j, m) in enumerate(zip(best.tolist(), scores.tolist(), strict=True)):
                 per_cue[i][name] = DecodedField(
-                    value=cand.values[int(j)], score=round(m, 6), z=round(math.sqrt(d) * m, 3)
+                    value=cand.values[j], score=round(m, 6), z=round(root * m, 3)
                 )
         return per_cue

@@ -24,6 +24,7 @@ __all__ = [
     "DEFAULT_TEAM_NAME",
     "BulkPutCounts",
     "CollectionRepository",
+    "CollectionRevision",
     "CompileReportRepository",
     "MemoryPage",
     "MemoryRepository",
@@ -86,6 +87,12 @@ class TeamRepository:
             return team
 
 
+class CollectionRevision(NamedTuple):
+    id: int
+    revision: int
+    verdict_options: dict[str, Any]
+
+
 class CollectionRepository:
     def __init__(self, session: Session) -> None:
         self.session = session
@@ -135,6 +142,22 @@ class CollectionRepository:
 
     def get_by_id(self, collection_id: int) -> Collection | None:
         return self.session.get(Collection, collection_id)
+
+    def revision_of(self, team: str, name: str) -> CollectionRevision | None:
+        """Id, revision and verdict options of team ``team``'s collection ``name`` in one query.
+
+        The recall path's check that its compiled memory is current: no ORM objects, one round
+        trip, so it stays cheap enough to run on every recall.
+        """
+        stmt = (
+            select(Collection.id, Collection.revision, Collection.verdict_options)
+            .join(Team, Team.id == Collection.team_id)
+            .where(Team.name == team, Collection.name == name)
+        )
+        row = self.session.execute(stmt).one_or_none()
+        if row is None:
+            return None
+        return CollectionRevision(int(row[0]), int(row[1]), dict(row[2] or {}))
 
     def list(self, team_id: int) -> builtins.list[Collection]:
         """The team's collections ordered by name."""

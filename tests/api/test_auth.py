@@ -25,6 +25,7 @@ from fastapi import FastAPI
 from service.api.app import create_app
 from service.api.logs import JsonFormatter
 from service.api.security import protected_routes
+from service.recall.auth import KeyService
 from service.settings import Settings
 from service.storage.db import make_engine, make_session_factory
 from service.storage.keys import ApiKeyRepository
@@ -361,6 +362,62 @@ class TestKeysOverHttp:
                      {"scopes": ["read"], "expires_in_days": 0}):  # fmt: skip
             assert_problem(await client.post("/v1/keys", json=body, headers=admin), 422,
                            "invalid-request")  # fmt: skip
+
+
+class TestAcceptedKeysAreRemembered:
+    """A worker remembers keys it accepted for ``key_cache_seconds``; revocation bounds."""
+
+    @staticmethod
+    def _other_worker(app: FastAPI) -> KeyService:
+        keys: KeyService = app.state.keys
+        return KeyService(keys.settings, keys.sessions, keys.pepper)
+
+    async def test_a_key_revoked_elsewhere_stops_working_within_the_cache_time(
+        self, world: World, fresh: Any, monkeypatch: pytest.MonkeyPatch
+    ) -> None:
+        app, client = await fresh(key_cache_seconds=5.0)
+        new, secret = app.state.keys.create_key("default", ["read"], label="cached")
+        key = bearer(secret)
+        assert (await client.get("/v1/collections", headers=key)).status_code == 200
+        self._other_worker(app).revoke_key(new.prefix, team="default")
+        # still remembered by this worker ...
+        assert (await client.get("/v1/collections", headers=key)).status_code == 200
+        # ... until the cache time has passed
+        later = datetime.now(UTC) + timedelta(seconds=6)
+        monkeypatch.setattr("service.recall.auth._now", lambda: later)
+        assert_problem(await client.get("/v1/collections", headers=key), 401, "unauthenticated")
+
+    async def test_with_no_cache_time_every_request_asks_the_database(
+        self, world: World, fresh: Any
+    ) -> None:
+        app, client = await fresh(key_cache_seconds=0)
+        new, secret = app.state.keys.create_key("default", ["read"], label="uncached")
+        key = bearer(secret)
+        assert (await client.get("/v1/collections", headers=key)).status_code == 200
+        self._other_worker(app).revoke_key(new.prefix, team="default")
+        assert_problem(await client.get("/v1/collections", headers=key), 401, "unauthenticated")
+
+    async def test_a_key_is_never_remembered_past_its_expiry(
+        self, world: World, fresh: Any, monkeypatch: pytest.MonkeyPatch
+    ) -> None:
+        app, client = await fresh(key_cache_seconds=300)
+        _, secret = app.state.keys.create_key("default", ["read"], expires_in_days=1)
+        key = bearer(secret)
+        assert (await client.get("/v1/collections", headers=key)).status_code == 200
+        later = datetime.now(UTC) + timedelta(days=1, seconds=1)
+        monkeypatch.setattr("service.recall.auth._now", lambda: later)
+        assert_problem(await client.get("/v1/collections", headers=key), 401, "unauthenticated")
+
+    async def test_refused_keys_are_not_remembered(self, world: World, fresh: Any) -> None:
+        app, client = await fresh()
+        for name in ("unknown", "revoked", "expired"):
+            secret = world.secrets.get(name, "cb_00000000_" + "A" * 43)
+            await client.get("/v1/collections", headers=bearer(secret))
+        assert (
+            app.state.keys.recently_accepted(bearer(world.secrets["revoked"])["Authorization"])
+            is None
+        )
+        assert len(app.state.keys._accepted) == 0
 
 
 class TestAuditOverHttp:

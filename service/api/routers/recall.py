@@ -2,18 +2,18 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Any
 
-from fastapi import APIRouter, Body, Request
+import orjson
+from fastapi import APIRouter, Body, Request, Response
+from starlette.concurrency import run_in_threadpool
 
+from service.api.batching import RecallQueue
 from service.api.deps import CurrentTeam, RequireScope, ServiceDep
 from service.api.examples import openapi_examples, response_examples
 from service.api.schemas import (
-    DecodedFieldRead,
-    NeighbourRead,
     RecallBatchRead,
     RecallBatchRequest,
-    RecalledMemoryRead,
     RecallOptionsSpec,
     RecallRead,
     RecallRequest,
@@ -35,6 +35,10 @@ RECALL_PROBLEMS = (
 )
 
 
+#: What cues must share to be settled together: team, collection and options.
+RecallKey = tuple[str, str, RecallOptions]
+
+
 def _options(spec: RecallOptionsSpec) -> RecallOptions:
     return RecallOptions(
         mode=spec.mode,
@@ -45,32 +49,37 @@ def _options(spec: RecallOptionsSpec) -> RecallOptions:
     )
 
 
-def recall_read(result: RecallResult) -> RecallRead:
-    return RecallRead(
-        verdict=result.verdict,
-        reason=result.reason,
-        memory=(
-            RecalledMemoryRead(key=result.memory.key, fields=result.memory.fields)
-            if result.memory is not None
-            else None
-        ),
-        best_key=result.best_key,
-        overlap=result.overlap,
-        margin=result.margin,
-        cue_overlap=result.cue_overlap,
-        cue_margin=result.cue_margin,
-        cue_agreement=result.cue_agreement,
-        field_agreement=result.field_agreement,
-        fields={
-            name: DecodedFieldRead(value=f.value, score=f.score, z=f.z)
+def recall_document(result: RecallResult) -> dict[str, Any]:
+    """``result`` as its JSON document, the shape of :class:`RecallRead` (built directly: a
+    large batch answer skips a round through the response model)."""
+    memory = result.memory
+    return {
+        "verdict": result.verdict,
+        "reason": result.reason,
+        "memory": ({"key": memory.key, "fields": memory.fields} if memory is not None else None),
+        "best_key": result.best_key,
+        "overlap": result.overlap,
+        "margin": result.margin,
+        "cue_overlap": result.cue_overlap,
+        "cue_margin": result.cue_margin,
+        "cue_agreement": result.cue_agreement,
+        "field_agreement": result.field_agreement,
+        "fields": {
+            name: {"value": f.value, "score": f.score, "z": f.z}
             for name, f in result.fields.items()
         },
-        nearest=[NeighbourRead(key=n.key, overlap=n.overlap) for n in result.nearest],
-        steps=result.steps,
-        converged=result.converged,
-        cycle_length=result.cycle_length,
-        revision=result.revision,
-        energy=result.energy,
+        "nearest": [{"key": n.key, "overlap": n.overlap} for n in result.nearest],
+        "steps": result.steps,
+        "converged": result.converged,
+        "cycle_length": result.cycle_length,
+        "revision": result.revision,
+        "energy": result.energy,
+    }
+
+
+def _json(document: Any) -> Response:
+    return Response(
+        orjson.dumps(document, option=orjson.OPT_SERIALIZE_NUMPY), media_type="application/json"
     )
 
 
@@ -86,17 +95,21 @@ def _count(request: Request, results: list[RecallResult]) -> None:
     dependencies=[RequireScope("read")],
     responses={200: response_examples("RecallRead"), **problem_responses(*RECALL_PROBLEMS)},
 )
-def recall(
+async def recall(
     request: Request,
     name: CollectionPath,
     body: Annotated[RecallRequest, Body(openapi_examples=openapi_examples("RecallRequest"))],
-    service: ServiceDep,
     team: CurrentTeam,
-) -> RecallRead:
-    """Recall the memory a cue belongs to."""
-    [result] = service.recall(team, name, [dict(body.cue)], _options(body.options))
+) -> Response:
+    """Recall the memory a cue belongs to.
+
+    Concurrent recalls on the same collection with the same options are settled together in
+    one matrix product; each is answered as if it came alone.
+    """
+    queue: RecallQueue[RecallKey, RecallResult] = request.app.state.recall_queue
+    result = await queue.submit((team, name, _options(body.options)), dict(body.cue))
     _count(request, [result])
-    return recall_read(result)
+    return _json(recall_document(result))
 
 
 @router.post(
@@ -108,7 +121,7 @@ def recall(
         **problem_responses(*RECALL_PROBLEMS, "limit-exceeded-batch"),
     },
 )
-def recall_batch(
+async def recall_batch(
     request: Request,
     name: CollectionPath,
     body: Annotated[
@@ -116,8 +129,10 @@ def recall_batch(
     ],
     service: ServiceDep,
     team: CurrentTeam,
-) -> RecallBatchRead:
+) -> Response:
     """Recall several cues at once; results come in the order of the cues."""
-    results = service.recall(team, name, [dict(c) for c in body.cues], _options(body.options))
+    results = await run_in_threadpool(
+        service.recall, team, name, [dict(c) for c in body.cues], _options(body.options)
+    )
     _count(request, results)
-    return RecallBatchRead(results=[recall_read(r) for r in results])
+    return _json({"results": [recall_document(r) for r in results]})

@@ -1,0 +1,113 @@
+"""Concurrent single-cue recalls on one collection share one matrix product.
+
+A single cue streams the whole weight or pattern matrix for a handful of useful flops; a batch
+of cues turns the same pass into a matrix product. Recall requests wait on the event loop, not
+on threads: the first request for an idle collection starts a run in the thread pool at once
+(no waiting window), and the requests that arrive while it runs queue up and go together in the
+next run. Under light load every cue runs alone with no added delay; under heavy load batches
+grow by themselves, and a request never waits more than one run before its own starts.
+
+Groups are keyed by everything that must be equal for cues to share a run (team, collection,
+options). The run answers each cue separately: one caller's invalid cue is refused alone.
+
+Examples
+--------
+>>> import asyncio
+>>> queue = RecallQueue(lambda key, cues: [len(c) for c in cues], max_batch=8)
+>>> async def two() -> list[int]:
+...     return list(await asyncio.gather(queue.submit("k", "ab"), queue.submit("k", "abc")))
+>>> asyncio.run(two()), queue.runs, queue.cues_run
+([2, 3], 1, 2)
+"""
+
+from __future__ import annotations
+
+import asyncio
+from collections.abc import Callable, Hashable, Sequence
+from typing import Any, Generic, TypeVar
+
+from starlette.concurrency import run_in_threadpool
+
+__all__ = ["RecallQueue"]
+
+K = TypeVar("K", bound=Hashable)
+R = TypeVar("R")
+
+
+class RecallQueue(Generic[K, R]):
+    """Groups concurrent submissions with equal keys into runs of ``run(key, cues)``.
+
+    Parameters
+    ----------
+    run : callable
+        ``run(key, cues)`` returns one entry per cue, in order: a result, or an exception to
+        raise in that cue's caller alone. An exception *raised* by ``run`` reaches every
+        caller of the run. It is called in the thread pool, one run per key at a time.
+    max_batch : int
+        The most cues in one run; the rest wait for the next.
+
+    Attributes
+    ----------
+    runs, cues_run : int
+        Counters, for the tests and the bench.
+    """
+
+    def __init__(
+        self, run: Callable[[K, Sequence[Any]], Sequence[R | BaseException]], max_batch: int
+    ) -> None:
+        if max_batch < 1:
+            raise ValueError(f"max_batch must be at least 1, got {max_batch}")
+        self._run = run
+        self.max_batch = max_batch
+        self._waiting: dict[K, list[tuple[Any, asyncio.Future[R]]]] = {}
+        self._busy: set[K] = set()
+        self._tasks: set[asyncio.Task[None]] = set()  # held, or a running drain could be lost
+        self.runs = 0
+        self.cues_run = 0
+
+    async def submit(self, key: K, cue: Any) -> R:
+        """Queue ``cue`` under ``key`` and wait for its own answer."""
+        future: asyncio.Future[R] = asyncio.get_running_loop().create_future()
+        self._waiting.setdefault(key, []).append((cue, future))
+        if key not in self._busy:
+            self._start(key)
+        return await future
+
+    def _start(self, key: K) -> None:
+        self._busy.add(key)
+        task = asyncio.get_running_loop().create_task(self._drain(key))
+        self._tasks.add(task)
+        task.add_done_callback(self._tasks.discard)
+
+    async def _drain(self, key: K) -> None:
+        try:
+            while waiting := self._waiting.pop(key, None):
+                batch, rest = waiting[: self.max_batch], waiting[self.max_batch :]
+                if rest:
+                    self._waiting[key] = rest
+                live = [(cue, f) for cue, f in batch if not f.done()]  # callers gone: skip
+                if not live:
+                    continue
+                try:
+                    answers = await run_in_threadpool(self._run, key, [cue for cue, _ in live])
+                except BaseException as exc:  # every caller of the run must learn of it
+                    for _, future in live:
+                        if not future.done():
+                            future.set_exception(exc)
+                    if isinstance(exc, asyncio.CancelledError):
+                        raise
+                    continue
+                self.runs += 1
+                self.cues_run += len(live)
+                for (_, future), answer in zip(live, answers, strict=True):
+                    if future.done():
+                        continue
+                    if isinstance(answer, BaseException):
+                        future.set_exception(answer)
+                    else:
+                        future.set_result(answer)
+        finally:
+            self._busy.discard(key)
+            # left by a cancelled drain: hand the waiting cues to a new one
+            if self._waiting.get(key):
+                self._start(key)

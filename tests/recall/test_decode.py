@@ -1,0 +1,64 @@
+"""Decoding settled states to field values: the shortcut for exact blocks changes no answer."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+
+from service.demo import demo_records, demo_schema
+from service.recall.compiled import CompiledMemory
+from service.recall.models import CollectionSpec, DecodedField, RecallOptions
+from service.recall.service import DEFAULT_TEAM, RecallService
+from service.settings import Settings
+from service.storage.db import make_engine, make_session_factory
+from service.storage.migrate import upgrade_to_head
+
+
+def _reference(
+    compiled: CompiledMemory, states: np.ndarray, nearest: np.ndarray
+) -> list[dict[str, DecodedField]]:
+    """Every candidate value scored against every block; ties go to the nearest memory's."""
+    out: list[dict[str, DecodedField]] = [{} for _ in range(states.shape[0])]
+    sf = states.astype(np.float32)
+    for name, cand in compiled.candidates.items():
+        block = sf[:, compiled.codec.schema.slices[name]]
+        d = block.shape[1]
+        scores = block @ cand.codes.T / np.float32(d)
+        ranked = scores.astype(np.float64)
+        ranked[np.arange(len(block)), cand.of_memory[nearest]] += 1e-9
+        for i, j in enumerate(np.argmax(ranked, axis=1)):
+            m = float(scores[i, j])
+            out[i][name] = DecodedField(
+                cand.values[int(j)], round(m, 6), round(math.sqrt(d) * m, 3)
+            )
+    return out
+
+
+def test_decoding_matches_scoring_every_candidate(tmp_path: Path) -> None:
+    settings = Settings(data_dir=tmp_path)
+    upgrade_to_head(settings.resolved_database_url)
+    service = RecallService(
+        settings, make_session_factory(make_engine(settings.resolved_database_url))
+    )
+    service.create_collection(DEFAULT_TEAM, CollectionSpec(name="s", schema=demo_schema(), seed=5))
+    records = demo_records(n=200)
+    service.import_memories(
+        DEFAULT_TEAM, "s", [(i, k, dict(f)) for i, (k, f) in enumerate(records)]
+    )
+    service.recall(DEFAULT_TEAM, "s", [dict(records[0][1])], RecallOptions())  # compiles
+    [compiled] = list(service.cache._entries.values())
+    rng = np.random.default_rng(3)
+    patterns = compiled.rule.patterns_
+    n_mem, n_units = patterns.shape
+    picks = rng.integers(0, n_mem, size=60)
+    states = patterns[picks].astype(np.int8).copy()
+    # exact memories (the shortcut), a few flipped units, a whole block replaced, random states
+    states[20:40] *= np.where(rng.random((20, n_units)) < 0.03, -1, 1).astype(np.int8)
+    states[40:50] = rng.choice(np.array([-1, 1], dtype=np.int8), size=(10, n_units))
+    first = next(iter(compiled.codec.schema.slices.values()))
+    states[50:60, first] = patterns[rng.integers(0, n_mem, size=10)][:, first]
+    # the nearest memory need not be the one a state came from
+    nearest = np.where(rng.random(60) < 0.7, picks, rng.integers(0, n_mem, size=60))
+    assert service._decode(compiled, states, nearest) == _reference(compiled, states, nearest)
