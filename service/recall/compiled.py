@@ -23,6 +23,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.engine import MemoryRule, VerdictThresholds
+from service.engine.bits import pack, packed_dots, unpack
 from service.engine.codec import Codec
 
 from .models import Fields
@@ -30,7 +31,7 @@ from .models import Fields
 
 @dataclass
 class FieldCandidates:
-    """Distinct stored values of one field and their codes, shape (n_values, units).
+    """Distinct stored values of one field and their ±1 codes, packed one bit per unit.
 
     ``of_memory[i]`` is the index in ``values`` of memory i's value, used to break ties in
     favour of the value the nearest memory really holds (values within one tile of each other
@@ -38,8 +39,24 @@ class FieldCandidates:
     """
 
     values: list[Any]
-    codes: NDArray[np.float32]
+    bits: NDArray[np.uint8]  # (n_values, ceil(units / 8))
+    units: int
     of_memory: NDArray[np.int64]
+
+    @classmethod
+    def from_codes(
+        cls, values: list[Any], codes: NDArray[Any], of_memory: NDArray[np.int64]
+    ) -> FieldCandidates:
+        return cls(values, pack(np.asarray(codes, dtype=np.int8)), int(codes.shape[1]), of_memory)
+
+    def codes(self, rows: NDArray[np.intp] | None = None) -> NDArray[np.float32]:
+        """The codes of ``rows`` of ``values`` (all when None) as float32, shape (rows, units)."""
+        bits = self.bits if rows is None else self.bits[rows]
+        return unpack(bits, self.units).astype(np.float32)
+
+    def scores(self, blocks: NDArray[np.float32]) -> NDArray[np.float32]:
+        """Overlap of each block with each value's code, shape (n_blocks, n_values), in [-1, 1]."""
+        return packed_dots(blocks, self.bits, self.units) / np.float32(self.units)
 
 
 @dataclass
@@ -59,7 +76,7 @@ class CompiledMemory:
 
     @property
     def nbytes(self) -> int:
-        cand = sum(c.codes.nbytes for c in self.candidates.values())
+        cand = sum(c.bits.nbytes + c.of_memory.nbytes for c in self.candidates.values())
         return int(self.rule.held_bytes_ + cand)
 
     def with_rule(self, **changes: Any) -> CompiledMemory:
@@ -90,6 +107,11 @@ class CompiledCache:
         self._entries: OrderedDict[int, CompiledMemory] = OrderedDict()
         self._lock = threading.Lock()
         self._compile_locks: dict[int, threading.Lock] = {}
+
+    def entries(self) -> list[CompiledMemory]:
+        """The cached compiled memories, least recently used first (a snapshot)."""
+        with self._lock:
+            return list(self._entries.values())
 
     def get(self, collection_id: int) -> CompiledMemory | None:
         with self._lock:

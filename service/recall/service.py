@@ -641,7 +641,7 @@ class RecallService:
                     values.append(raw if spec.kind in ("text", "category") else _json_value(norm))
                 of_memory[i] = seen[norm]
             codes = np.stack([codec.encode_value(spec.name, v) for v in values]).astype(np.float32)
-            out[spec.name] = FieldCandidates(values=values, codes=codes, of_memory=of_memory)
+            out[spec.name] = FieldCandidates.from_codes(values, codes, of_memory)
         return out
 
     def _compiled(self, session: Any, coll: Collection) -> CompiledMemory:
@@ -954,12 +954,12 @@ class RecallService:
             # Where a block is exactly that value's code, the value scores the maximum, 1, and
             # wins the tie rule below: the answer is known without the product (the common
             # case, a settled state on a stored memory).
-            exact = (block == cand.codes[own]).all(axis=1)
+            exact = (block == cand.codes(own)).all(axis=1)
             best = own.copy()
             scores = np.ones(len(best), dtype=np.float64)
             rows = np.flatnonzero(~exact)
             if rows.size:
-                full = block[rows] @ cand.codes.T / np.float32(d)  # (rows, n_values)
+                full = cand.scores(block[rows])  # (rows, n_values)
                 # on equal scores, the nearest memory's own value wins
                 ranked = full.astype(np.float64)
                 ranked[np.arange(rows.size), own[rows]] += 1e-9

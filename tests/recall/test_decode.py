@@ -25,7 +25,7 @@ def _reference(
     for name, cand in compiled.candidates.items():
         block = sf[:, compiled.codec.schema.slices[name]]
         d = block.shape[1]
-        scores = block @ cand.codes.T / np.float32(d)
+        scores = block @ cand.codes().T / np.float32(d)
         ranked = scores.astype(np.float64)
         ranked[np.arange(len(block)), cand.of_memory[nearest]] += 1e-9
         for i, j in enumerate(np.argmax(ranked, axis=1)):
