@@ -71,6 +71,16 @@ class Settings(BaseSettings):
             "every request against the database."
         ),
     )
+    engine_threads: int = Field(
+        default=1,
+        ge=1,
+        le=64,
+        description=(
+            "Recall computations a worker runs at once (single-cue runs and batch requests). "
+            "Their Python parts hold the GIL, so more than the worker's share of cores only "
+            "adds contention; the rest queue. Run more workers for more cores."
+        ),
+    )
     recall_batch_max: int = Field(
         default=64,
         ge=1,

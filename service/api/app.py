@@ -14,6 +14,7 @@ from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
 from typing import Any
 
+import anyio
 from fastapi import FastAPI
 from fastapi.openapi.utils import get_openapi
 from sqlalchemy.engine import make_url
@@ -101,9 +102,13 @@ def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
         try:
             app.state.engine = engine
             app.state.service = service = RecallService(settings, make_session_factory(engine))
+            # Recalls are numpy work holding the GIL between products: threads beyond the
+            # worker's share of cores only contend, so they take turns (see engine_threads).
+            app.state.engine_limiter = limiter = anyio.CapacityLimiter(settings.engine_threads)
             app.state.recall_queue = RecallQueue[RecallKey, RecallResult](
                 lambda key, cues: service.recall_each(key[0], key[1], cues, key[2]),
                 max_batch=settings.recall_batch_max,
+                limiter=limiter,
             )
             app.state.keys = KeyService(settings, make_session_factory(engine), pepper)
             app.state.jobs = ReconciliationService(app.state.service)

@@ -26,7 +26,8 @@ import asyncio
 from collections.abc import Callable, Hashable, Sequence
 from typing import Any, Generic, TypeVar
 
-from starlette.concurrency import run_in_threadpool
+import anyio
+import anyio.to_thread
 
 __all__ = ["RecallQueue"]
 
@@ -45,6 +46,8 @@ class RecallQueue(Generic[K, R]):
         caller of the run. It is called in the thread pool, one run per key at a time.
     max_batch : int
         The most cues in one run; the rest wait for the next.
+    limiter : anyio.CapacityLimiter, optional
+        Bounds the runs (of all keys, and whatever else shares it) in threads at once.
 
     Attributes
     ----------
@@ -53,11 +56,15 @@ class RecallQueue(Generic[K, R]):
     """
 
     def __init__(
-        self, run: Callable[[K, Sequence[Any]], Sequence[R | BaseException]], max_batch: int
+        self,
+        run: Callable[[K, Sequence[Any]], Sequence[R | BaseException]],
+        max_batch: int,
+        limiter: anyio.CapacityLimiter | None = None,
     ) -> None:
         if max_batch < 1:
             raise ValueError(f"max_batch must be at least 1, got {max_batch}")
         self._run = run
+        self._limiter = limiter
         self.max_batch = max_batch
         self._waiting: dict[K, list[tuple[Any, asyncio.Future[R]]]] = {}
         self._busy: set[K] = set()
@@ -89,7 +96,9 @@ class RecallQueue(Generic[K, R]):
                 if not live:
                     continue
                 try:
-                    answers = await run_in_threadpool(self._run, key, [cue for cue, _ in live])
+                    answers = await anyio.to_thread.run_sync(
+                        self._run, key, [cue for cue, _ in live], limiter=self._limiter
+                    )
                 except BaseException as exc:  # every caller of the run must learn of it
                     for _, future in live:
                         if not future.done():

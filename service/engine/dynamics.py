@@ -157,7 +157,7 @@ def _settle_sync(
         s = state[active]
         confirmed = None
         if dense is not None:
-            h, winner, runner = dense._fields(s, n_known[active])
+            h, winner, runner = dense._fields(s, n_known[active], signs_only=True)
         else:
             h = rule.local_fields(s, n_known[active])
         new = _sign_keep(h, s)

@@ -889,13 +889,19 @@ class DenseRule(MemoryRule):
         return np.asarray(nats / betas.astype(np.float64))
 
     def _fields(
-        self, states: F32, n_known: NDArray[np.int64] | None
+        self, states: F32, n_known: NDArray[np.int64] | None, *, signs_only: bool = False
     ) -> tuple[F32, NDArray[np.intp], F64]:
         """Local fields, each state's winning memory (-1 unless one-hot) and runner-up dot.
 
         A near one-hot softmax is the common case at the default β, and there the readout
         is the winning pattern itself: two reductions over the dot products replace the
         exponentials, the normalisation and the gather. Other states take the full path.
+
+        With ``signs_only`` (what the sign update needs), a state whose best memory holds
+        more than half the softmax weight gets that pattern in place of its fields: the
+        others together weigh less than it, so no unit's field can change sign,
+        and the readout product is skipped. The margin of 1e-3 dwarfs the float32 rounding of
+        the weights and the readout tolerance. Those states are not reported as winners.
         """
         self._require_fitted()
         betas = self._betas(states, n_known)
@@ -920,7 +926,13 @@ class DenseRule(MemoryRule):
             z -= z.max(axis=1, keepdims=True)
             np.exp(z, out=z)
             z /= z.sum(axis=1, keepdims=True)
-            fields[slow] = self._readout(z)
+            if signs_only:
+                # the best memory's weight sits where the max was subtracted: exp(0) / sum
+                dominant = z[np.arange(slow.size), best[slow]] > np.float32(0.5 + 1e-3)
+                fields[slow[dominant]] = self._x[best[slow[dominant]]]
+                z, slow = z[~dominant], slow[~dominant]
+            if slow.size:
+                fields[slow] = self._readout(z)
         winner = np.where(one_hot, best, -1)
         return fields, winner, runner
 

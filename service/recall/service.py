@@ -36,7 +36,7 @@ from service.engine import (
 )
 from service.engine.codec import Codec, Schema
 from service.settings import Settings
-from service.storage.db import SessionFactory, unit_of_work
+from service.storage.db import SessionFactory, read_connection, unit_of_work
 from service.storage.errors import DuplicateNameError
 from service.storage.models import Collection
 from service.storage.repositories import (
@@ -44,6 +44,7 @@ from service.storage.repositories import (
     CompileReportRepository,
     MemoryRepository,
     TeamRepository,
+    collection_revision,
 )
 
 from .compiled import CompiledCache, CompiledMemory, FieldCandidates
@@ -802,12 +803,13 @@ class RecallService:
         recall; the ORM path (and a compile) runs only when the cache is behind or the
         collection is missing.
         """
-        with unit_of_work(self.sessions, write=False) as session:
-            current = CollectionRepository(session).revision_of(team, name)
-            cached = self.cache.get(current.id) if current is not None else None
-            if current is not None and cached is not None and cached.revision == current.revision:
-                compiled, verdict_options = cached, current.verdict_options
-            else:
+        with read_connection(self.sessions) as connection:
+            current = collection_revision(connection, team, name)
+        cached = self.cache.get(current.id) if current is not None else None
+        if current is not None and cached is not None and cached.revision == current.revision:
+            compiled, verdict_options = cached, current.verdict_options
+        else:
+            with unit_of_work(self.sessions, write=False) as session:
                 coll = self._collection(session, team, name)
                 compiled, verdict_options = self._compiled(session, coll), coll.verdict_options
         default_steps = verdict_options.get("max_steps")

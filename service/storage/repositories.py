@@ -11,7 +11,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple, NoReturn, cast
 
-from sqlalchemy import CursorResult, Table, delete, func, select, update
+from sqlalchemy import Connection, CursorResult, Table, delete, func, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
@@ -29,6 +29,7 @@ __all__ = [
     "MemoryPage",
     "MemoryRepository",
     "TeamRepository",
+    "collection_revision",
 ]
 
 #: The team every collection belongs to until keys and teams are managed through the API.
@@ -93,6 +94,23 @@ class CollectionRevision(NamedTuple):
     verdict_options: dict[str, Any]
 
 
+def collection_revision(connection: Connection, team: str, name: str) -> CollectionRevision | None:
+    """Id, revision and verdict options of team ``team``'s collection ``name`` in one query.
+
+    The recall path's check that its compiled memory is current: Core only, one round trip,
+    so it stays cheap enough to run on every recall.
+    """
+    stmt = (
+        select(Collection.id, Collection.revision, Collection.verdict_options)
+        .join(Team, Team.id == Collection.team_id)
+        .where(Team.name == team, Collection.name == name)
+    )
+    row = connection.execute(stmt).one_or_none()
+    if row is None:
+        return None
+    return CollectionRevision(int(row[0]), int(row[1]), dict(row[2] or {}))
+
+
 class CollectionRepository:
     def __init__(self, session: Session) -> None:
         self.session = session
@@ -142,22 +160,6 @@ class CollectionRepository:
 
     def get_by_id(self, collection_id: int) -> Collection | None:
         return self.session.get(Collection, collection_id)
-
-    def revision_of(self, team: str, name: str) -> CollectionRevision | None:
-        """Id, revision and verdict options of team ``team``'s collection ``name`` in one query.
-
-        The recall path's check that its compiled memory is current: no ORM objects, one round
-        trip, so it stays cheap enough to run on every recall.
-        """
-        stmt = (
-            select(Collection.id, Collection.revision, Collection.verdict_options)
-            .join(Team, Team.id == Collection.team_id)
-            .where(Team.name == team, Collection.name == name)
-        )
-        row = self.session.execute(stmt).one_or_none()
-        if row is None:
-            return None
-        return CollectionRevision(int(row[0]), int(row[1]), dict(row[2] or {}))
 
     def list(self, team_id: int) -> builtins.list[Collection]:
         """The team's collections ordered by name."""

@@ -335,6 +335,28 @@ class TestDenseRule:
         # < readout_tolerance = 1e-6 per field
         np.testing.assert_allclose(rule.local_fields(states), plain, atol=1e-5)
 
+    @pytest.mark.parametrize("beta", [8.0, 16.0, 32.0, 80.0])
+    def test_the_sign_shortcut_gives_the_signs_of_the_real_fields(
+        self, random_patterns: PatternMaker, beta: float
+    ) -> None:
+        # Where the best memory holds over half the softmax weight the settle loop takes its
+        # pattern for the signs; checked against the float64 readout Xᵀ softmax(β' X s)
+        # (Ramsauer et al. 2020) on states from sure to hopeless.
+        X = random_patterns(300, 96)
+        rule = DenseRule(beta=beta).fit(X)
+        rng = np.random.default_rng(int(beta))
+        states = X[rng.integers(0, 300, size=200)].astype(np.float32)
+        flip = rng.random(states.shape) < np.linspace(0.0, 0.5, 200)[:, None]
+        states[flip] *= -1
+        states[rng.random(states.shape) < 0.2] = 0.0
+        fast, _, _ = rule._fields(states, None, signs_only=True)
+        a = rule.softmax(states).astype(np.float64)
+        plain = a @ X.astype(np.float64)
+        firm = np.abs(plain) > 1e-4  # fields this close to zero are rounding's to decide
+        np.testing.assert_array_equal(np.sign(fast)[firm], np.sign(plain)[firm])
+        dominant = a.max(axis=1) > 0.5 + 1e-3
+        assert 0 < dominant.sum() < len(states), "both kinds of state must be under test"
+
     def test_default_beta_grows_with_the_root_of_n_within_its_clip(self) -> None:
         # common practice, no published source: β = √N keeps chance logits at ½ nat
         assert default_beta(100) == 20.0

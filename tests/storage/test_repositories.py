@@ -10,7 +10,7 @@ from typing import Any
 import pytest
 from sqlalchemy.orm import Session
 
-from service.storage.db import SessionFactory, unit_of_work
+from service.storage.db import SessionFactory, read_connection, unit_of_work
 from service.storage.errors import DuplicateNameError, NotFoundError
 from service.storage.models import Collection, Team
 from service.storage.repositories import (
@@ -20,6 +20,7 @@ from service.storage.repositories import (
     CompileReportRepository,
     MemoryRepository,
     TeamRepository,
+    collection_revision,
 )
 
 SCHEMA: list[dict[str, Any]] = [
@@ -189,6 +190,26 @@ class TestCollectionRepository:
     def test_revision_of_a_missing_collection_raises(self, session: Session) -> None:
         with pytest.raises(NotFoundError):
             CollectionRepository(session).revision(987654)
+
+
+class TestCollectionRevision:
+    def test_one_query_reads_id_revision_and_verdict_options_by_team_and_name(
+        self, session_factory: SessionFactory
+    ) -> None:
+        with unit_of_work(session_factory, write=True) as session:
+            default = TeamRepository(session).get_or_create_default()
+            other = TeamRepository(session).create("harbour-lab")
+            mine = make_collection(session, default)
+            make_collection(session, other, name="elsewhere")
+            CollectionRepository(session).bump_revision(mine.id)
+            mine_id = mine.id
+        with read_connection(session_factory) as connection:
+            found = collection_revision(connection, DEFAULT_TEAM_NAME, "specimens")
+            assert found == (mine_id, 1, {"min_overlap": 0.5})
+            # another team's collection, or a missing one, is not found
+            assert collection_revision(connection, DEFAULT_TEAM_NAME, "elsewhere") is None
+            assert collection_revision(connection, "harbour-lab", "specimens") is None
+            assert collection_revision(connection, "nobody", "specimens") is None
 
 
 class TestMemoryRepository:

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 from typing import Annotated, Any
 
+import anyio.to_thread
 import orjson
 from fastapi import APIRouter, Body, Request, Response
-from starlette.concurrency import run_in_threadpool
 
 from service.api.batching import RecallQueue
 from service.api.deps import CurrentTeam, RequireScope, ServiceDep
@@ -131,8 +131,14 @@ async def recall_batch(
     team: CurrentTeam,
 ) -> Response:
     """Recall several cues at once; results come in the order of the cues."""
-    results = await run_in_threadpool(
-        service.recall, team, name, [dict(c) for c in body.cues], _options(body.options)
+    cues = [dict(c) for c in body.cues]
+    results = await anyio.to_thread.run_sync(
+        service.recall,
+        team,
+        name,
+        cues,
+        _options(body.options),
+        limiter=request.app.state.engine_limiter,
     )
     _count(request, results)
     return _json({"results": [recall_document(r) for r in results]})
