@@ -137,16 +137,32 @@ def best_time(fn: Callable[[], object], repeats: int) -> float:
     return best
 
 
+#: Rounds of :func:`best_times` continue past ``repeats`` until this many seconds have been
+#: spent (at most :data:`MAX_ROUNDS`): a best of 3 over millisecond calls on a shared
+#: machine is mostly noise, a best of 100 is not.
+MIN_TIMING_SECONDS = 0.25
+MAX_ROUNDS = 200
+
+
 def best_times(fns: Sequence[Callable[[], object]], repeats: int) -> list[float]:
-    """Best time of each function, the functions run in turn within every repeat."""
+    """Best time of each function, the functions run in turn within every round.
+
+    At least ``repeats`` rounds, and more while the rounds so far took under
+    :data:`MIN_TIMING_SECONDS`; every function gets the same rounds.
+    """
     for fn in fns:
         fn()
     best = [math.inf] * len(fns)
-    for _ in range(repeats):
+    start = time.perf_counter()
+    rounds = 0
+    while rounds < repeats or (
+        rounds < MAX_ROUNDS and time.perf_counter() - start < MIN_TIMING_SECONDS
+    ):
         for i, fn in enumerate(fns):
             t0 = time.perf_counter()
             fn()
             best[i] = min(best[i], time.perf_counter() - t0)
+        rounds += 1
     return best
 
 

@@ -88,6 +88,13 @@ def _in_set(arr: NDArray[Any], *, with_zero: bool) -> NDArray[np.bool_]:
 
 def as_cues(value: Any, name: str = "cues", *, n_units: int | None = None) -> NDArray[np.int8]:
     """Validate an (n_cues, n_units) matrix of values in {-1, 0, +1}; 0 marks an unknown unit."""
+    if isinstance(value, np.ndarray) and value.dtype == np.int8 and value.ndim == 2:
+        # the engine's own encoding: only the shape and the values need a look
+        check_matrix(value, name, n_units=n_units)
+        if not ((value >= -1) & (value <= 1)).all():
+            bad = value[(value < -1) | (value > 1)].flat[0]
+            raise StateValueError(f"{name} must hold only -1, 0 and +1, found {bad!r}")
+        return value if value.flags.c_contiguous else np.ascontiguousarray(value)
     arr = as_array(value, name)
     if arr.ndim == 1:
         arr = arr[np.newaxis, :]

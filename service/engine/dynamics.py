@@ -30,6 +30,7 @@ Examples
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -131,6 +132,8 @@ def settle(
     check_int(seed, "seed", low=0, high=2**63 - 1)
     c = as_cues(cues, "cues", n_units=rule.n_units_)
     if mode == "sync":
+        if isinstance(rule, DenseRule) and not clamp and not record_energy:
+            return _settle_dense(rule, c, limit)
         return _settle_sync(rule, c, clamp, limit, record_energy)
     return _settle_async(rule, c, clamp, limit, seed, record_energy)
 
@@ -157,7 +160,7 @@ def _settle_sync(
         s = state[active]
         confirmed = None
         if dense is not None:
-            h, winner, runner = dense._fields(s, n_known[active], signs_only=True)
+            h, winner, runner, _ = dense._fields(s, n_known[active], signs_only=True)
         else:
             h = rule.local_fields(s, n_known[active])
         new = _sign_keep(h, s)
@@ -192,6 +195,116 @@ def _settle_sync(
         converged=converged,
         cycle_length=cycle,
         energies=None if trace is None else [np.asarray(t) for t in trace],
+    )
+
+
+def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> SettleResult:
+    """:func:`_settle_sync` for the dense rule without clamping or an energy trace, in fewer
+    passes over the states (the common case, so it is worth its own loop).
+
+    Where a state's readout is one-hot its new state is the winning pattern x_w, and what
+    the general loop learns by comparing whole states follows from the best dot product,
+    top = x_w·s, already at hand: s already is x_w exactly when top = N, and for s in
+    {-1, 0, +1}ᴺ the distance ‖x_w − s‖₁ of the confirming-step bound is N − top. Only the
+    other states take the general comparisons. The results are the general loop's, and the
+    tests hold the two to each other.
+    """
+    n_cues, n_units = cues.shape
+    if n_cues == 1:
+        alone = _settle_one(rule, cues, limit)
+        if alone is not None:
+            return alone
+    n_known = np.count_nonzero(cues, axis=1).astype(np.int64)
+    state = cues.astype(np.float32)
+    prev = np.empty_like(state)  # state one step back; read only where written
+    steps = np.zeros(n_cues, dtype=np.int64)
+    converged = np.zeros(n_cues, dtype=bool)
+    cycle = np.zeros(n_cues, dtype=np.int64)
+    active = np.arange(n_cues)
+    for step in range(limit):
+        whole = active.size == n_cues
+        s = state if whole else state[active]
+        known = n_known if whole else n_known[active]
+        h, winner, runner, top = rule._fields(s, known, signs_only=True)
+        one_hot = winner >= 0
+        new = h  # a one-hot state's fields are its winning pattern, ±1 already
+        fixed = top == n_units
+        other = np.flatnonzero(~one_hot)
+        if other.size:
+            new[other] = _sign_keep(h[other], s[other])
+            fixed[other] = (new[other] == s[other]).all(axis=1)
+        steps[active] += 1
+        if step > 0:
+            two_cycle = ~fixed & (new == prev[active]).all(axis=1)
+        else:
+            two_cycle = np.zeros(active.size, dtype=bool)
+        done = fixed | two_cycle
+        if step + 1 < limit:
+            gap = rule._one_hot_gap(rule._betas(s, known))
+            confirmed = one_hot & ~done & (runner + (n_units - top) < n_units - gap)
+            # the step that would find nothing to change still counts, as in the plain loop
+            steps[active[confirmed]] += 1
+            converged[active[confirmed]] = True
+            done |= confirmed
+        converged[active[fixed]] = True
+        cycle[active[two_cycle]] = 2
+        if step == 0 and fixed.all():  # every cue already was its memory: states are the cues
+            return SettleResult(cues.copy(), steps, converged, cycle)
+        going = np.flatnonzero(~done)
+        prev[active[going]] = s[going]
+        if whole:
+            state = new
+        else:
+            state[active] = new
+        active = active[going]
+        if active.size == 0:
+            break
+    return SettleResult(
+        states=state.astype(np.int8),
+        steps=steps,
+        converged=converged,
+        cycle_length=cycle,
+    )
+
+
+def _settle_one(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> SettleResult | None:
+    """A lone cue whose first readout is one-hot and settles in that step (or provably in
+    the next), in a handful of scalar steps; None where the general loop must decide.
+
+    The same tests and the same numbers as :func:`_settle_dense`'s first step (the gap as
+    ``DenseRule._one_hot_gap`` computes it), for one cue: there the calls around a
+    matrix-vector product cost as much as the product.
+    """
+    s = cues[0]
+    n_units = s.shape[0]
+    dots = rule._x @ s.astype(np.float32)  # exact integers
+    n_mem = dots.shape[0]
+    best = int(dots.argmax())
+    top = float(dots[best])
+    if n_mem > 1:
+        dots[best] = -np.inf
+        runner = float(dots.max())
+    else:
+        runner = -math.inf
+    if rule.readout_tolerance == 0.0:
+        return None
+    known = int(np.count_nonzero(s)) or 1
+    beta = float(np.float32(rule.beta_) / np.float32(known))
+    gap = (math.log(2.0 * n_mem / rule.readout_tolerance) + 1e-3) / beta
+    if not runner < top - gap:
+        return None
+    if top == n_units:  # the cue is the winning pattern: nothing changes
+        steps, state = 1, cues.copy()
+    elif limit > 1 and runner + (n_units - top) < n_units - gap:
+        steps = 2  # the proven confirming step counts, as in the loop
+        state = rule._x[best : best + 1].astype(np.int8)
+    else:
+        return None
+    return SettleResult(
+        states=state,
+        steps=np.full(1, steps, dtype=np.int64),
+        converged=np.ones(1, dtype=bool),
+        cycle_length=np.zeros(1, dtype=np.int64),
     )
 
 
@@ -253,14 +366,17 @@ def _settle_async(
             # logits β' X s are kept current; one flip moves them by β' Δ x_i
             betas = dense._betas(s, nk)
             logits = dense.logits(s, nk)
-            xs = dense._x
+            # unit-major for this run only: each unit's column is then one contiguous row
+            xs = np.ascontiguousarray(dense._x.T)
         else:
             fields = rule.local_fields(s, nk)
         for unit in rng.permutation(n_units):
             if dense is not None:
                 z = logits - logits.max(axis=1, keepdims=True)
                 a = np.exp(z)
-                h_u = (a @ xs[:, unit]) / a.sum(axis=1)
+                # a product and a row sum, not a matrix-vector product: each state's field
+                # is then summed the same way whatever other states share the batch
+                h_u = (a * xs[unit]).sum(axis=1) / a.sum(axis=1)
             else:
                 h_u = fields[:, unit]
             cur = s[:, unit]
@@ -275,7 +391,7 @@ def _settle_async(
             s[moved, unit] += delta[moved]
             flipped[moved] = True
             if dense is not None:
-                logits[moved] += (betas[moved] * delta[moved])[:, None] * xs[:, unit][None, :]
+                logits[moved] += (betas[moved] * delta[moved])[:, None] * xs[unit][None, :]
             else:
                 fields[moved] += delta[moved][:, None] * rule.unit_weights(unit)[None, :]
         state[active] = s

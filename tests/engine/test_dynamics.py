@@ -13,6 +13,7 @@ from hypothesis import strategies as st
 from numpy.typing import NDArray
 
 from service.engine import DenseRule, HebbianRule, judge, settle
+from service.engine.dynamics import _settle_sync
 
 PatternMaker = Callable[[int, int], NDArray[np.int8]]
 RuleWithWeights = Callable[..., HebbianRule]
@@ -271,6 +272,45 @@ class TestDenseSettling:
         # Rangarajan 2003): lse is convex, and sign(∇) maximises its linearisation on the cube
         assert result.energies is not None
         assert all(never_rises(t) for t in result.energies)
+
+    @settings(max_examples=80, deadline=None)
+    @given(
+        seed=st.integers(0, 2**32 - 1),
+        n=st.integers(4, 64),
+        p=st.integers(1, 80),
+        distinct=st.integers(1, 80),
+        beta=st.floats(0.1, 80.0),
+        max_steps=st.integers(1, 6),
+        unknown=st.floats(0.0, 0.9),
+        flipped=st.floats(0.0, 0.5),
+    )
+    def test_the_dense_loop_gives_the_general_loops_results(
+        self,
+        seed: int,
+        n: int,
+        p: int,
+        distinct: int,
+        beta: float,
+        max_steps: int,
+        unknown: float,
+        flipped: float,
+    ) -> None:
+        # settle() takes a shorter loop for the dense rule (no clamp, no energy); every
+        # field of its result must equal the general loop's, repeated memories included
+        rng = np.random.default_rng(seed)
+        base = np.where(rng.random((min(p, distinct), n)) < 0.5, -1, 1).astype(np.int8)
+        X = base[rng.integers(0, base.shape[0], size=p)]
+        cues = X[rng.integers(0, p, size=12)].copy()
+        cues[rng.random(cues.shape) < flipped] *= -1
+        cues[rng.random(cues.shape) < unknown] = 0
+        cues[:, 0] = X[0, 0]  # at least one known unit per cue
+        rule = DenseRule(beta=beta).fit(X)
+        fast = settle(rule, cues, max_steps=max_steps)
+        plain = _settle_sync(rule, cues, False, max_steps, False)
+        np.testing.assert_array_equal(fast.states, plain.states)
+        np.testing.assert_array_equal(fast.steps, plain.steps)
+        np.testing.assert_array_equal(fast.converged, plain.converged)
+        np.testing.assert_array_equal(fast.cycle_length, plain.cycle_length)
 
     @pytest.mark.parametrize("beta", [0.5, 1.0, 2.0])
     def test_similar_memories_at_low_beta_settle_on_a_metastable_average(
