@@ -31,7 +31,7 @@ Examples
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -46,6 +46,9 @@ __all__ = ["MAX_STEPS", "MODES", "SettleResult", "settle"]
 MODES: tuple[str, ...] = ("sync", "async")
 #: Hard ceiling on the step limit a caller may ask for.
 MAX_STEPS = 10_000
+#: The dense loop hands its dot products on to the verdict up to this many (cues × memories):
+#: 16 MB of float32 each for the cues and the states.
+KEEP_DOTS_MAX = 4_000_000
 
 
 @dataclass(frozen=True)
@@ -73,6 +76,13 @@ class SettleResult:
     converged: NDArray[np.bool_]
     cycle_length: NDArray[np.int64]
     energies: list[NDArray[np.float64]] | None = None
+    #: Dot products the run already computed, for :func:`~service.engine.verdict.judge` to
+    #: reuse instead of multiplying again (exact integers): ``X c`` of each cue, and ``X s``
+    #: of each final state where ``state_dots_known``. Only for these very ``cues``.
+    cues: NDArray[np.int8] | None = field(default=None, repr=False, compare=False)
+    cue_dots: NDArray[np.float32] | None = field(default=None, repr=False, compare=False)
+    state_dots: NDArray[np.float32] | None = field(default=None, repr=False, compare=False)
+    state_dots_known: NDArray[np.bool_] | None = field(default=None, repr=False, compare=False)
 
     @property
     def step_limit_hit(self) -> NDArray[np.bool_]:
@@ -160,7 +170,7 @@ def _settle_sync(
         s = state[active]
         confirmed = None
         if dense is not None:
-            h, winner, runner, _ = dense._fields(s, n_known[active], signs_only=True)
+            h, winner, runner, _, _ = dense._fields(s, n_known[active], signs_only=True)
         else:
             h = rule.local_fields(s, n_known[active])
         new = _sign_keep(h, s)
@@ -221,11 +231,17 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
     converged = np.zeros(n_cues, dtype=bool)
     cycle = np.zeros(n_cues, dtype=np.int64)
     active = np.arange(n_cues)
+    keep = n_cues * rule.n_memories_ <= KEEP_DOTS_MAX  # dot products worth handing on
+    cue_dots: NDArray[np.float32] | None = None
+    state_dots = np.empty((n_cues, rule.n_memories_), dtype=np.float32) if keep else None
+    state_known = np.zeros(n_cues, dtype=bool)
     for step in range(limit):
         whole = active.size == n_cues
         s = state if whole else state[active]
         known = n_known if whole else n_known[active]
-        h, winner, runner, top = rule._fields(s, known, signs_only=True)
+        h, winner, runner, top, dots = rule._fields(s, known, signs_only=True)
+        if keep and step == 0:
+            cue_dots = dots  # the first state is the cue itself
         one_hot = winner >= 0
         new = h  # a one-hot state's fields are its winning pattern, ±1 already
         fixed = top == n_units
@@ -248,8 +264,13 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
             done |= confirmed
         converged[active[fixed]] = True
         cycle[active[two_cycle]] = 2
+        if state_dots is not None and fixed.any():  # s is the final state: its dots are known
+            state_dots[active[fixed]] = dots[fixed]
+            state_known[active[fixed]] = True
         if step == 0 and fixed.all():  # every cue already was its memory: states are the cues
-            return SettleResult(cues.copy(), steps, converged, cycle)
+            return SettleResult(
+                cues.copy(), steps, converged, cycle, None, cues, cue_dots, cue_dots, state_known
+            )
         going = np.flatnonzero(~done)
         prev[active[going]] = s[going]
         if whole:
@@ -264,6 +285,10 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
         steps=steps,
         converged=converged,
         cycle_length=cycle,
+        cues=cues,
+        cue_dots=cue_dots,
+        state_dots=state_dots,
+        state_dots_known=state_known if keep else None,
     )
 
 
@@ -284,6 +309,7 @@ def _settle_one(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> SettleRe
     if n_mem > 1:
         dots[best] = -np.inf
         runner = float(dots.max())
+        dots[best] = top
     else:
         runner = -math.inf
     if rule.readout_tolerance == 0.0:
@@ -294,17 +320,22 @@ def _settle_one(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> SettleRe
     if not runner < top - gap:
         return None
     if top == n_units:  # the cue is the winning pattern: nothing changes
-        steps, state = 1, cues.copy()
+        steps, state, same = 1, cues.copy(), True
     elif limit > 1 and runner + (n_units - top) < n_units - gap:
         steps = 2  # the proven confirming step counts, as in the loop
-        state = rule._x[best : best + 1].astype(np.int8)
+        state, same = rule._x[best : best + 1].astype(np.int8), False
     else:
         return None
+    row = dots.reshape(1, n_mem)
     return SettleResult(
         states=state,
         steps=np.full(1, steps, dtype=np.int64),
         converged=np.ones(1, dtype=bool),
         cycle_length=np.zeros(1, dtype=np.int64),
+        cues=cues,
+        cue_dots=row,
+        state_dots=row,
+        state_dots_known=np.full(1, same),
     )
 
 

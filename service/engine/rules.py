@@ -904,9 +904,9 @@ class DenseRule(MemoryRule):
 
     def _fields(
         self, states: F32, n_known: NDArray[np.int64] | None, *, signs_only: bool = False
-    ) -> tuple[F32, NDArray[np.intp], F64, F64]:
+    ) -> tuple[F32, NDArray[np.intp], F64, F64, F32]:
         """Local fields, each state's winning memory (-1 unless one-hot), runner-up and best
-        dot products.
+        dot products, and all the dot products X s (left as computed).
 
         A near one-hot softmax is the common case at the default β, and there the readout
         is the winning pattern itself: two reductions over the dot products replace the
@@ -934,11 +934,11 @@ class DenseRule(MemoryRule):
         one_hot = runner < top - self._one_hot_gap(betas)
         slow = np.flatnonzero(~one_hot)
         if slow.size == 0:  # the common case: one gather, no masked copy
-            return self._x[best], best, runner, top
+            return self._x[best], best, runner, top, dots
         fields = np.empty((n_states, self._x.shape[1]), dtype=np.float32)
         fields[one_hot] = self._x[best[one_hot]]
         if slow.size:
-            z = dots if slow.size == n_states else dots[slow]
+            z = dots[slow]  # a copy: the dot products are returned as they are
             z *= betas[slow][:, None]
             z -= z.max(axis=1, keepdims=True)
             np.exp(z, out=z)
@@ -951,7 +951,7 @@ class DenseRule(MemoryRule):
             if slow.size:
                 fields[slow] = self._readout(z)
         winner = np.where(one_hot, best, -1)
-        return fields, winner, runner, top
+        return fields, winner, runner, top, dots
 
     def _readout(self, a: F32) -> F32:
         """``a @ X`` over the weights above ``readout_tolerance / P``.

@@ -296,8 +296,21 @@ def judge(
     # States and cues in one product: one pass over the patterns instead of two (the dot
     # products are integers, exact in float32, so sharing the product changes no value).
     n_states = sf.shape[0]
-    both = np.concatenate([sf, cf])
-    dots = rule.pattern_dots(both) if rule is not None else both @ xf.T
+    if rule is not None and result.cues is c and result.cue_dots is not None:
+        # the settle run's own dot products: the cues', and the final states' where known
+        dots: NDArray[np.float32] = np.empty((2 * n_states, n_mem), dtype=np.float32)
+        dots[n_states:] = result.cue_dots
+        known = result.state_dots_known
+        if result.state_dots is not None and known is not None and known.any():
+            dots[:n_states][known] = result.state_dots[known]
+            missing = np.flatnonzero(~known)
+        else:
+            missing = np.arange(n_states)
+        if missing.size:
+            dots[missing] = rule.pattern_dots(sf[missing])
+    else:
+        both = np.concatenate([sf, cf])
+        dots = rule.pattern_dots(both) if rule is not None else np.asarray(both @ xf.T)
     overlaps = dots[:n_states] / np.float32(n_units)  # (B, P), exact up to rounding of 1/N
     best, m_best, m_second = _top2(overlaps)
     m_min = overlaps.min(axis=1).astype(np.float64)

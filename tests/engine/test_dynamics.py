@@ -312,6 +312,46 @@ class TestDenseSettling:
         np.testing.assert_array_equal(fast.converged, plain.converged)
         np.testing.assert_array_equal(fast.cycle_length, plain.cycle_length)
 
+    @settings(max_examples=60, deadline=None)
+    @given(
+        seed=st.integers(0, 2**32 - 1),
+        n=st.integers(4, 64),
+        p=st.integers(1, 80),
+        n_cues=st.integers(1, 12),
+        beta=st.floats(0.5, 80.0),
+        max_steps=st.integers(1, 6),
+        unknown=st.floats(0.0, 0.9),
+        flipped=st.floats(0.0, 0.5),
+    )
+    def test_the_verdict_on_reused_dot_products_is_the_verdict_on_fresh_ones(
+        self,
+        seed: int,
+        n: int,
+        p: int,
+        n_cues: int,
+        beta: float,
+        max_steps: int,
+        unknown: float,
+        flipped: float,
+    ) -> None:
+        # judge() takes the dense loop's dot products for the very cues it settled; a copy
+        # of the cues makes it multiply afresh: the verdicts must not differ in any field
+        rng = np.random.default_rng(seed)
+        X = np.where(rng.random((p, n)) < 0.5, -1, 1).astype(np.int8)
+        cues = X[rng.integers(0, p, size=n_cues)].copy()
+        cues[rng.random(cues.shape) < flipped] *= -1
+        cues[rng.random(cues.shape) < unknown] = 0
+        cues[:, 0] = X[0, 0]
+        rule = DenseRule(beta=beta).fit(X)
+        result = settle(rule, cues, max_steps=max_steps)
+        assert result.cue_dots is not None, "the reuse must be what is under test"
+        reused = judge(rule, cues, result, top_k=3, blocks=[slice(0, n // 2), slice(n // 2, n)])
+        fresh = judge(
+            rule, cues.copy(), result, top_k=3, blocks=[slice(0, n // 2), slice(n // 2, n)]
+        )
+        for name in vars(fresh):
+            np.testing.assert_equal(getattr(reused, name), getattr(fresh, name), err_msg=name)
+
     @pytest.mark.parametrize("beta", [0.5, 1.0, 2.0])
     def test_similar_memories_at_low_beta_settle_on_a_metastable_average(
         self, random_patterns: PatternMaker, beta: float

@@ -349,7 +349,7 @@ class TestDenseRule:
         flip = rng.random(states.shape) < np.linspace(0.0, 0.5, 200)[:, None]
         states[flip] *= -1
         states[rng.random(states.shape) < 0.2] = 0.0
-        fast, _, _, _ = rule._fields(states, None, signs_only=True)
+        fast, _, _, _, _ = rule._fields(states, None, signs_only=True)
         a = rule.softmax(states).astype(np.float64)
         plain = a @ X.astype(np.float64)
         firm = np.abs(plain) > 1e-4  # fields this close to zero are rounding's to decide
