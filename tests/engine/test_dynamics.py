@@ -231,6 +231,24 @@ class TestMixtureStates:
         np.testing.assert_array_equal(result.states, -X[:3])
 
 
+DenseCase = tuple[DenseRule, NDArray[np.int8], int]
+
+
+@st.composite
+def dense_cases(draw: st.DrawFn) -> DenseCase:
+    """A dense rule (repeated memories likely), 1 to 12 cues flipped and holed, a step limit."""
+    rng = np.random.default_rng(draw(st.integers(0, 2**32 - 1)))
+    n, p = draw(st.integers(4, 64)), draw(st.integers(1, 80))
+    base = np.where(rng.random((min(p, draw(st.integers(1, 80))), n)) < 0.5, -1, 1)
+    X = base[rng.integers(0, base.shape[0], size=p)].astype(np.int8)
+    cues = X[rng.integers(0, p, size=draw(st.integers(1, 12)))].copy()
+    cues[rng.random(cues.shape) < draw(st.floats(0.0, 0.5))] *= -1
+    cues[rng.random(cues.shape) < draw(st.floats(0.0, 0.9))] = 0
+    cues[:, 0] = X[0, 0]  # at least one known unit per cue
+    rule = DenseRule(beta=draw(st.floats(0.1, 80.0))).fit(X)
+    return rule, cues, draw(st.integers(1, 6))
+
+
 class TestDenseSettling:
     def test_twenty_n_memories_are_recalled_from_cues_with_a_fifth_of_bits_flipped(
         self, random_patterns: PatternMaker, rng: np.random.Generator
@@ -274,37 +292,11 @@ class TestDenseSettling:
         assert all(never_rises(t) for t in result.energies)
 
     @settings(max_examples=80, deadline=None)
-    @given(
-        seed=st.integers(0, 2**32 - 1),
-        n=st.integers(4, 64),
-        p=st.integers(1, 80),
-        distinct=st.integers(1, 80),
-        beta=st.floats(0.1, 80.0),
-        max_steps=st.integers(1, 6),
-        unknown=st.floats(0.0, 0.9),
-        flipped=st.floats(0.0, 0.5),
-    )
-    def test_the_dense_loop_gives_the_general_loops_results(
-        self,
-        seed: int,
-        n: int,
-        p: int,
-        distinct: int,
-        beta: float,
-        max_steps: int,
-        unknown: float,
-        flipped: float,
-    ) -> None:
+    @given(case=dense_cases())
+    def test_the_dense_loop_gives_the_general_loops_results(self, case: DenseCase) -> None:
         # settle() takes a shorter loop for the dense rule (no clamp, no energy); every
         # field of its result must equal the general loop's, repeated memories included
-        rng = np.random.default_rng(seed)
-        base = np.where(rng.random((min(p, distinct), n)) < 0.5, -1, 1).astype(np.int8)
-        X = base[rng.integers(0, base.shape[0], size=p)]
-        cues = X[rng.integers(0, p, size=12)].copy()
-        cues[rng.random(cues.shape) < flipped] *= -1
-        cues[rng.random(cues.shape) < unknown] = 0
-        cues[:, 0] = X[0, 0]  # at least one known unit per cue
-        rule = DenseRule(beta=beta).fit(X)
+        rule, cues, max_steps = case
         fast = settle(rule, cues, max_steps=max_steps)
         plain = _settle_sync(rule, cues, False, max_steps, False)
         np.testing.assert_array_equal(fast.states, plain.states)
@@ -313,42 +305,19 @@ class TestDenseSettling:
         np.testing.assert_array_equal(fast.cycle_length, plain.cycle_length)
 
     @settings(max_examples=60, deadline=None)
-    @given(
-        seed=st.integers(0, 2**32 - 1),
-        n=st.integers(4, 64),
-        p=st.integers(1, 80),
-        n_cues=st.integers(1, 12),
-        beta=st.floats(0.5, 80.0),
-        max_steps=st.integers(1, 6),
-        unknown=st.floats(0.0, 0.9),
-        flipped=st.floats(0.0, 0.5),
-    )
+    @given(case=dense_cases())
     def test_the_verdict_on_reused_dot_products_is_the_verdict_on_fresh_ones(
-        self,
-        seed: int,
-        n: int,
-        p: int,
-        n_cues: int,
-        beta: float,
-        max_steps: int,
-        unknown: float,
-        flipped: float,
+        self, case: DenseCase
     ) -> None:
         # judge() takes the dense loop's dot products for the very cues it settled; a copy
         # of the cues makes it multiply afresh: the verdicts must not differ in any field
-        rng = np.random.default_rng(seed)
-        X = np.where(rng.random((p, n)) < 0.5, -1, 1).astype(np.int8)
-        cues = X[rng.integers(0, p, size=n_cues)].copy()
-        cues[rng.random(cues.shape) < flipped] *= -1
-        cues[rng.random(cues.shape) < unknown] = 0
-        cues[:, 0] = X[0, 0]
-        rule = DenseRule(beta=beta).fit(X)
+        rule, cues, max_steps = case
         result = settle(rule, cues, max_steps=max_steps)
         assert result.cue_dots is not None, "the reuse must be what is under test"
-        reused = judge(rule, cues, result, top_k=3, blocks=[slice(0, n // 2), slice(n // 2, n)])
-        fresh = judge(
-            rule, cues.copy(), result, top_k=3, blocks=[slice(0, n // 2), slice(n // 2, n)]
-        )
+        n = cues.shape[1]
+        blocks = [slice(0, n // 2), slice(n // 2, n)]
+        reused = judge(rule, cues, result, top_k=3, blocks=blocks)
+        fresh = judge(rule, cues.copy(), result, top_k=3, blocks=blocks)
         for name in vars(fresh):
             np.testing.assert_equal(getattr(reused, name), getattr(fresh, name), err_msg=name)
 
