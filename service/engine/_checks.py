@@ -91,7 +91,7 @@ def as_cues(value: Any, name: str = "cues", *, n_units: int | None = None) -> ND
     if isinstance(value, np.ndarray) and value.dtype == np.int8 and value.ndim == 2:
         # the engine's own encoding: only the shape and the values need a look
         check_matrix(value, name, n_units=n_units)
-        if not ((value >= -1) & (value <= 1)).all():
+        if value.min() < -1 or value.max() > 1:  # two passes, no temporaries
             bad = value[(value < -1) | (value > 1)].flat[0]
             raise StateValueError(f"{name} must hold only -1, 0 and +1, found {bad!r}")
         return value if value.flags.c_contiguous else np.ascontiguousarray(value)

@@ -224,8 +224,9 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
         alone = _settle_one(rule, cues, limit)
         if alone is not None:
             return alone
-    n_known = np.count_nonzero(cues, axis=1).astype(np.int64)
     state = cues.astype(np.float32)
+    # Σ s² counts the known units exactly (ones, in float32), a third of count_nonzero's time
+    n_known = np.einsum("ij,ij->i", state, state).astype(np.int64)
     prev = np.empty_like(state)  # state one step back; read only where written
     steps = np.zeros(n_cues, dtype=np.int64)
     converged = np.zeros(n_cues, dtype=bool)
@@ -235,11 +236,17 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
     cue_dots: NDArray[np.float32] | None = None
     state_dots = np.empty((n_cues, rule.n_memories_), dtype=np.float32) if keep else None
     state_known = np.zeros(n_cues, dtype=bool)
+    first = rule._winners(state, n_known)
+    done_at_once = _settled_at_once(rule, cues, limit, first, keep)
+    if done_at_once is not None:
+        return done_at_once
     for step in range(limit):
         whole = active.size == n_cues
         s = state if whole else state[active]
         known = n_known if whole else n_known[active]
-        h, winner, runner, top, dots = rule._fields(s, known, signs_only=True)
+        h, winner, runner, top, dots = rule._fields(
+            s, known, signs_only=True, winners=first if step == 0 else None
+        )
         if keep and step == 0:
             cue_dots = dots  # the first state is the cue itself
         one_hot = winner >= 0
@@ -267,10 +274,6 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
         if state_dots is not None and fixed.any():  # s is the final state: its dots are known
             state_dots[active[fixed]] = dots[fixed]
             state_known[active[fixed]] = True
-        if step == 0 and fixed.all():  # every cue already was its memory: states are the cues
-            return SettleResult(
-                cues.copy(), steps, converged, cycle, None, cues, cue_dots, cue_dots, state_known
-            )
         going = np.flatnonzero(~done)
         prev[active[going]] = s[going]
         if whole:
@@ -289,6 +292,48 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
         cue_dots=cue_dots,
         state_dots=state_dots,
         state_dots_known=state_known if keep else None,
+    )
+
+
+def _settled_at_once(
+    rule: DenseRule,
+    cues: NDArray[np.int8],
+    limit: int,
+    first: tuple[Any, ...],
+    keep: bool,
+) -> SettleResult | None:
+    """The result when every cue's first readout is one-hot and each is either its memory
+    already or provably settles on it in the next step (the common case); else None.
+
+    What :func:`_settle_dense` would find, without building the winners' patterns as
+    float32 fields first: a cue that is its memory stays as it is, the others become their
+    memory's pattern, gathered once as int8.
+    """
+    dots, best, runner, top, one_hot, betas = first
+    if not one_hot.all():
+        return None
+    n_cues, n_units = cues.shape
+    fixed = top == n_units
+    if limit > 1:
+        gap = rule._one_hot_gap(betas)
+        moved = ~fixed & (runner + (n_units - top) < n_units - gap)
+    else:
+        moved = np.zeros(n_cues, dtype=bool)
+    if not (fixed | moved).all():
+        return None
+    states = cues.copy()
+    rows = np.flatnonzero(moved)
+    if rows.size:
+        states[rows] = rule._x[best[rows]]  # ±1.0 → ±1 exactly
+    return SettleResult(
+        states=states,
+        steps=np.where(moved, 2, 1).astype(np.int64),  # the proven confirming step counts
+        converged=np.ones(n_cues, dtype=bool),
+        cycle_length=np.zeros(n_cues, dtype=np.int64),
+        cues=cues if keep else None,
+        cue_dots=dots if keep else None,
+        state_dots=dots if keep else None,
+        state_dots_known=fixed if keep else None,
     )
 
 

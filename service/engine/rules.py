@@ -902,22 +902,11 @@ class DenseRule(MemoryRule):
         nats = math.log(2.0 * self.n_memories_ / self.readout_tolerance) + 1e-3
         return np.asarray(nats / betas.astype(np.float64))
 
-    def _fields(
-        self, states: F32, n_known: NDArray[np.int64] | None, *, signs_only: bool = False
-    ) -> tuple[F32, NDArray[np.intp], F64, F64, F32]:
-        """Local fields, each state's winning memory (-1 unless one-hot), runner-up and best
-        dot products, and all the dot products X s (left as computed).
-
-        A near one-hot softmax is the common case at the default β, and there the readout
-        is the winning pattern itself: two reductions over the dot products replace the
-        exponentials, the normalisation and the gather. Other states take the full path.
-
-        With ``signs_only`` (what the sign update needs), a state whose best memory holds
-        more than half the softmax weight gets that pattern in place of its fields: the
-        others together weigh less than it, so no unit's field can change sign,
-        and the readout product is skipped. The margin of 1e-3 dwarfs the float32 rounding of
-        the weights and the readout tolerance. Those states are not reported as winners.
-        """
+    def _winners(
+        self, states: F32, n_known: NDArray[np.int64] | None
+    ) -> tuple[F32, NDArray[np.intp], F64, F64, NDArray[np.bool_], NDArray[np.float32]]:
+        """Dot products X s, each state's best memory, runner-up and best dot products,
+        whether its readout is one-hot (see :meth:`_one_hot_gap`), and its β'."""
         self._require_fitted()
         betas = self._betas(states, n_known)
         dots = self._dots(states)
@@ -932,6 +921,33 @@ class DenseRule(MemoryRule):
         else:
             runner = np.full(n_states, -np.inf)
         one_hot = runner < top - self._one_hot_gap(betas)
+        return dots, best, runner, top, one_hot, betas
+
+    def _fields(
+        self,
+        states: F32,
+        n_known: NDArray[np.int64] | None,
+        *,
+        signs_only: bool = False,
+        winners: tuple[Any, ...] | None = None,
+    ) -> tuple[F32, NDArray[np.intp], F64, F64, F32]:
+        """Local fields, each state's winning memory (-1 unless one-hot), runner-up and best
+        dot products, and all the dot products X s (left as computed).
+
+        A near one-hot softmax is the common case at the default β, and there the readout
+        is the winning pattern itself: two reductions over the dot products replace the
+        exponentials, the normalisation and the gather. Other states take the full path.
+
+        With ``signs_only`` (what the sign update needs), a state whose best memory holds
+        more than half the softmax weight gets that pattern in place of its fields: the
+        others together weigh less than it, so no unit's field can change sign,
+        and the readout product is skipped. The margin of 1e-3 dwarfs the float32 rounding of
+        the weights and the readout tolerance. Those states are not reported as winners.
+        """
+        if winners is None:  # else what :meth:`_winners` gave for these very states
+            winners = self._winners(states, n_known)
+        dots, best, runner, top, one_hot, betas = winners
+        n_states = dots.shape[0]
         slow = np.flatnonzero(~one_hot)
         if slow.size == 0:  # the common case: one gather, no masked copy
             return self._x[best], best, runner, top, dots
