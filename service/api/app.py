@@ -10,7 +10,7 @@ from __future__ import annotations
 import logging
 import re
 import threading
-from collections.abc import AsyncIterator, Callable
+from collections.abc import AsyncIterator, Callable, Sequence
 from contextlib import asynccontextmanager
 from typing import Any
 
@@ -21,6 +21,7 @@ from sqlalchemy.engine import make_url
 from starlette.concurrency import run_in_threadpool
 
 from service.recall.auth import KeyService, PepperMissing, load_pepper
+from service.recall.errors import ServiceError
 from service.recall.jobs import JobRunner, ReconciliationService
 from service.recall.models import RecallResult
 from service.recall.service import RecallService
@@ -32,6 +33,7 @@ from . import docs
 from .batching import RecallQueue
 from .bodies import BodyLimitMiddleware
 from .errors import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_error_handlers
+from .heap import HeapFreezer
 from .lifecycle import Lifecycle
 from .logs import RequestLogMiddleware
 from .metrics import Metrics
@@ -105,10 +107,15 @@ def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
             # Recalls are numpy work holding the GIL between products: threads beyond the
             # worker's share of cores only contend, so they take turns (see engine_threads).
             app.state.engine_limiter = limiter = anyio.CapacityLimiter(settings.engine_threads)
+            app.state.heap = heap = HeapFreezer(lambda: service.cache.generation)
+
+            def run(key: RecallKey, cues: Sequence[Any]) -> list[RecallResult | ServiceError]:
+                answers = service.recall_each(key[0], key[1], cues, key[2])
+                heap.after_run()
+                return answers
+
             app.state.recall_queue = RecallQueue[RecallKey, RecallResult](
-                lambda key, cues: service.recall_each(key[0], key[1], cues, key[2]),
-                max_batch=settings.recall_batch_max,
-                limiter=limiter,
+                run, max_batch=settings.recall_batch_max, limiter=limiter
             )
             app.state.keys = KeyService(settings, make_session_factory(engine), pepper)
             app.state.jobs = ReconciliationService(app.state.service)

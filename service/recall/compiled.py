@@ -107,6 +107,8 @@ class CompiledCache:
         self._entries: OrderedDict[int, CompiledMemory] = OrderedDict()
         self._lock = threading.Lock()
         self._compile_locks: dict[int, threading.Lock] = {}
+        #: Counts the entries stored; moves whenever the cache holds something new.
+        self.generation = 0
 
     def entries(self) -> list[CompiledMemory]:
         """The cached compiled memories, least recently used first (a snapshot)."""
@@ -127,6 +129,7 @@ class CompiledCache:
                 return  # a newer compile landed first; keep it
             self._entries[entry.collection_id] = entry
             self._entries.move_to_end(entry.collection_id)
+            self.generation += 1
             total = sum(e.nbytes for e in self._entries.values())
             while total > self.max_bytes and len(self._entries) > 1:
                 _, dropped = self._entries.popitem(last=False)

@@ -11,7 +11,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple, NoReturn, cast
 
-from sqlalchemy import Connection, CursorResult, Table, delete, func, select, update
+from sqlalchemy import Connection, CursorResult, Table, bindparam, delete, func, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
@@ -94,18 +94,22 @@ class CollectionRevision(NamedTuple):
     verdict_options: dict[str, Any]
 
 
+#: Built once: constructing a select and deriving its cache key each call cost more than
+#: running it.
+_REVISION_QUERY = (
+    select(Collection.id, Collection.revision, Collection.verdict_options)
+    .join(Team, Team.id == Collection.team_id)
+    .where(Team.name == bindparam("team"), Collection.name == bindparam("name"))
+)
+
+
 def collection_revision(connection: Connection, team: str, name: str) -> CollectionRevision | None:
     """Id, revision and verdict options of team ``team``'s collection ``name`` in one query.
 
     The recall path's check that its compiled memory is current: Core only, one round trip,
     so it stays cheap enough to run on every recall.
     """
-    stmt = (
-        select(Collection.id, Collection.revision, Collection.verdict_options)
-        .join(Team, Team.id == Collection.team_id)
-        .where(Team.name == team, Collection.name == name)
-    )
-    row = connection.execute(stmt).one_or_none()
+    row = connection.execute(_REVISION_QUERY, {"team": team, "name": name}).one_or_none()
     if row is None:
         return None
     return CollectionRevision(int(row[0]), int(row[1]), dict(row[2] or {}))

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import gc
 import threading
 from collections.abc import Sequence
 from typing import Any
@@ -128,3 +129,18 @@ async def test_concurrent_requests_share_runs_and_each_gets_its_own_answer(
     assert [r.json() for r in together] == [r.json() for r in alone]
     assert alone[-1].status_code == 422
     assert app.state.recall_queue.runs - runs_before < len(together)
+
+
+async def test_a_new_compile_is_frozen_out_of_the_collectors_walks(
+    seeded: httpx.AsyncClient,
+) -> None:
+    # the first recall compiles the collection: its objects leave the collector's walks
+    # (service/api/heap.py); a recall that changes nothing freezes nothing
+    cue = {"cue": {"taxon": "Zostera marina"}}
+    before = gc.get_freeze_count()
+    assert (await seeded.post(f"{BASE}/recall", json=cue)).status_code == 200
+    after_compile = gc.get_freeze_count()
+    assert after_compile > before
+    assert (await seeded.post(f"{BASE}/recall", json=cue)).status_code == 200
+    # (frozen objects still go when their last reference does, so the count may fall)
+    assert gc.get_freeze_count() <= after_compile

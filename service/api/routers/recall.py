@@ -11,6 +11,7 @@ from fastapi import APIRouter, Body, Request, Response
 from service.api.batching import RecallQueue
 from service.api.deps import CurrentTeam, RequireScope, ServiceDep
 from service.api.examples import openapi_examples, response_examples
+from service.api.heap import HeapFreezer
 from service.api.schemas import (
     RecallBatchRead,
     RecallBatchRequest,
@@ -132,13 +133,14 @@ async def recall_batch(
 ) -> Response:
     """Recall several cues at once; results come in the order of the cues."""
     cues = [dict(c) for c in body.cues]
-    results = await anyio.to_thread.run_sync(
-        service.recall,
-        team,
-        name,
-        cues,
-        _options(body.options),
-        limiter=request.app.state.engine_limiter,
-    )
+    heap: HeapFreezer = request.app.state.heap
+    options = _options(body.options)
+
+    def run() -> list[RecallResult]:
+        answers = service.recall(team, name, cues, options)
+        heap.after_run()
+        return answers
+
+    results = await anyio.to_thread.run_sync(run, limiter=request.app.state.engine_limiter)
     _count(request, results)
     return _json({"results": [recall_document(r) for r in results]})
