@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections import Counter
 from typing import Annotated, Any
 
 import anyio.to_thread
@@ -86,8 +87,8 @@ def _json(document: Any) -> Response:
 
 def _count(request: Request, results: list[RecallResult]) -> None:
     verdicts = request.app.state.metrics.verdicts
-    for r in results:
-        verdicts.labels(r.verdict, r.reason).inc()
+    for (verdict, reason), n in Counter((r.verdict, r.reason) for r in results).items():
+        verdicts.labels(verdict, reason).inc(n)
 
 
 @router.post(
