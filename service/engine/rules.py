@@ -194,9 +194,8 @@ class MemoryRule:
     def held_bytes_(self) -> int:
         """Bytes of every array the rule holds now, each buffer counted once.
 
-        The recall arrays, the stored patterns and whatever is cached (such as
-        :attr:`patterns_f32_` once something asked for it); unlike ``patterns_.nbytes`` it
-        builds nothing.
+        The recall arrays, the stored patterns and anything a rule caches on itself; unlike
+        ``patterns_.nbytes`` it builds nothing.
         """
         self._require_fitted()
         seen: set[int] = set()
