@@ -357,11 +357,9 @@ def _settle_one(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> SettleRe
         dots[best] = top
     else:
         runner = -math.inf
-    if rule.readout_tolerance == 0.0:
-        return None
     known = int(np.count_nonzero(s)) or 1
-    beta = float(np.float32(rule.beta_) / np.float32(known))
-    gap = (math.log(2.0 * n_mem / rule.readout_tolerance) + 1e-3) / beta
+    beta = float(np.float32(rule.beta_) / np.float32(known))  # as DenseRule._betas rounds it
+    gap = rule._one_hot_nats() / beta
     if not runner < top - gap:
         return None
     if top == n_units:  # the cue is the winning pattern: nothing changes

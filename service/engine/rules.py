@@ -896,10 +896,13 @@ class DenseRule(MemoryRule):
         normaliser), so the sparse readout would skip it too, and all of them together move
         a field by less than the tolerance. The slack of 1e-3 nat covers float32 rounding.
         """
+        return np.asarray(self._one_hot_nats() / betas.astype(np.float64))
+
+    def _one_hot_nats(self) -> float:
+        """The lead of :meth:`_one_hot_gap` in nats (β' times the dot-product lead)."""
         if self.readout_tolerance == 0.0:
-            return np.full(betas.shape, np.inf)
-        nats = math.log(2.0 * self.n_memories_ / self.readout_tolerance) + 1e-3
-        return np.asarray(nats / betas.astype(np.float64))
+            return math.inf
+        return math.log(2.0 * self.n_memories_ / self.readout_tolerance) + 1e-3
 
     def _winners(
         self, states: F32, n_known: NDArray[np.int64] | None
