@@ -174,6 +174,21 @@ def assert_problem(response: httpx.Response, status: int, slug: str) -> dict[str
 
 
 SeedFn = Callable[[httpx.AsyncClient], Any]
+#: What ``make_client`` is: settings overrides in, an admin client out.
+Make = Callable[..., Any]
+
+#: A memory that is not in the seed, and a cue that matches one that is.
+FIELDS: dict[str, Any] = {
+    "taxon": "Littorina littorea",
+    "collector": "Maren Holt",
+    "site_code": "SMP-N3",
+    "collected_on": "2024-09-03",
+    "depth_m": 0.8,
+}
+CUE: dict[str, Any] = {"taxon": "Spartina alterniflora", "site_code": "SMP-N3"}
+JSON = {"Content-Type": "application/json"}
+NDJSON = {"Content-Type": "application/x-ndjson"}
+CSV = {"Content-Type": "text/csv"}
 
 
 @pytest.fixture

@@ -30,21 +30,13 @@ from service.settings import Settings
 from service.storage.db import make_engine, make_session_factory
 from service.storage.keys import ApiKeyRepository
 
-from .conftest import PROBLEM, SEED, UNLIMITED, assert_problem, bearer
+from .conftest import CUE, FIELDS, PROBLEM, SEED, UNLIMITED, assert_problem, bearer
 
 pytestmark = pytest.mark.anyio
 
 COLL = SEED["collection"]["name"]
 KEYS = list(SEED["memories"])
 OTHER_TEAM = "harrow"
-FIELDS = {
-    "taxon": "Littorina littorea",
-    "collector": "Maren Holt",
-    "site_code": "SMP-N3",
-    "collected_on": "2024-09-03",
-    "depth_m": 0.8,
-}
-CUE = {"taxon": "Spartina alterniflora", "site_code": "SMP-N3"}
 SECRET_RE = re.compile(r"cb_[a-z0-9]{8}_[A-Za-z0-9_-]{43}")
 
 

@@ -5,30 +5,17 @@ from __future__ import annotations
 
 import json
 import sqlite3
-from collections.abc import AsyncIterator, Callable
+from collections.abc import AsyncIterator
 from pathlib import Path
-from typing import Any
 from urllib.parse import quote
 
 import httpx
 import pytest
 
-from .conftest import BASE, SEED, assert_problem
+from .conftest import BASE, CSV, CUE, FIELDS, JSON, NDJSON, SEED, Make, assert_problem
 
 pytestmark = pytest.mark.anyio
 
-Make = Callable[..., Any]
-FIELDS = {
-    "taxon": "Littorina littorea",
-    "collector": "Maren Holt",
-    "site_code": "SMP-N3",
-    "collected_on": "2024-09-03",
-    "depth_m": 0.8,
-}
-CUE = {"taxon": "Spartina alterniflora", "site_code": "SMP-N3"}
-JSON = {"Content-Type": "application/json"}
-NDJSON = {"Content-Type": "application/x-ndjson"}
-CSV = {"Content-Type": "text/csv"}
 MIB = 1024 * 1024
 
 

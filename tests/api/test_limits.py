@@ -4,27 +4,14 @@ names the limit, the value asked for and the maximum."""
 from __future__ import annotations
 
 import json
-from collections.abc import Callable
 from typing import Any
 
 import httpx
 import pytest
 
-from .conftest import BASE, SEED, assert_problem
+from .conftest import BASE, CSV, CUE, FIELDS, NDJSON, SEED, Make, assert_problem
 
 pytestmark = pytest.mark.anyio
-
-Make = Callable[..., Any]
-FIELDS = {
-    "taxon": "Littorina littorea",
-    "collector": "Maren Holt",
-    "site_code": "SMP-N3",
-    "collected_on": "2024-09-03",
-    "depth_m": 0.8,
-}
-CUE = {"taxon": "Spartina alterniflora", "site_code": "SMP-N3"}
-NDJSON = {"Content-Type": "application/x-ndjson"}
-CSV = {"Content-Type": "text/csv"}
 
 
 async def _seeded(make: Make, **overrides: Any) -> httpx.AsyncClient:
