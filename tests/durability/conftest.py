@@ -40,6 +40,23 @@ WARM_START = (
 )
 
 
+def small_spec(name: str, *, text: str, category: str, seed: int) -> dict[str, Any]:
+    """A collection the durability tests can fill and compile fast: one text and one category
+    field, the Hebbian rule, thresholds left uncalibrated."""
+    return {
+        "name": name,
+        "schema": {
+            "fields": [
+                {"name": text, "kind": "text", "units": 256},
+                {"name": category, "kind": "category", "units": 64},
+            ]
+        },
+        "rule": "hebbian",
+        "verdict_options": {"calibrate": False},
+        "seed": seed,
+    }
+
+
 def free_port() -> int:
     with socket.socket() as sock:
         sock.bind(("127.0.0.1", 0))

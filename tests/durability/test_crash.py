@@ -29,7 +29,7 @@ from service.settings import Settings
 from service.storage.db import make_engine, make_session_factory
 from service.storage.migrate import upgrade_to_head
 
-from .conftest import ServerProcess, SpawnServer, auth_headers, check
+from .conftest import ServerProcess, SpawnServer, auth_headers, check, small_spec
 
 pytestmark = pytest.mark.slow
 
@@ -42,18 +42,7 @@ IMPORT_ROWS = (10, 150)
 PUT_KEYS = 24
 COLLECTION = "bins"
 BASE = f"/v1/collections/{COLLECTION}"
-SPEC: dict[str, Any] = {
-    "name": COLLECTION,
-    "schema": {
-        "fields": [
-            {"name": "label", "kind": "text", "units": 256},
-            {"name": "bin", "kind": "category", "units": 64},
-        ]
-    },
-    "rule": "hebbian",
-    "verdict_options": {"calibrate": False},
-    "seed": 91_337,
-}
+SPEC = small_spec(COLLECTION, text="label", category="bin", seed=91_337)
 Fields = dict[str, Any]
 
 

@@ -20,7 +20,7 @@ from typing import Any
 import httpx
 import pytest
 
-from .conftest import SpawnServer, auth_headers, check
+from .conftest import SpawnServer, auth_headers, check, small_spec
 
 pytestmark = pytest.mark.slow
 
@@ -33,18 +33,7 @@ KEYS_PER_CLIENT = 12
 SEED = 8_808
 COLLECTION = "soak"
 BASE = f"/v1/collections/{COLLECTION}"
-SPEC: dict[str, Any] = {
-    "name": COLLECTION,
-    "schema": {
-        "fields": [
-            {"name": "label", "kind": "text", "units": 256},
-            {"name": "shelf", "kind": "category", "units": 64},
-        ]
-    },
-    "rule": "hebbian",
-    "verdict_options": {"calibrate": False},
-    "seed": 31_337,
-}
+SPEC = small_spec(COLLECTION, text="label", category="shelf", seed=31_337)
 ANCHOR = {"label": "anchor record, never changed", "shelf": "S0"}
 Fields = dict[str, Any]
 

@@ -13,24 +13,13 @@ from typing import Any
 import httpx
 import pytest
 
-from .conftest import SpawnServer, auth_headers, check
+from .conftest import SpawnServer, auth_headers, check, small_spec
 
 pytestmark = pytest.mark.slow
 
 COLLECTION = "parts"
 BASE = f"/v1/collections/{COLLECTION}"
-SPEC: dict[str, Any] = {
-    "name": COLLECTION,
-    "schema": {
-        "fields": [
-            {"name": "part", "kind": "text", "units": 256},
-            {"name": "bin", "kind": "category", "units": 64},
-        ]
-    },
-    "rule": "hebbian",
-    "verdict_options": {"calibrate": False},
-    "seed": 77_001,
-}
+SPEC = small_spec(COLLECTION, text="part", category="bin", seed=77_001)
 # An invented workshop's parts store: distinct names, so each cue has one clear answer.
 PARTS = {
     "P-100": {"part": "brass hinge", "bin": "A1"},
