@@ -45,9 +45,10 @@ class FieldCandidates:
 
     @classmethod
     def from_codes(
-        cls, values: list[Any], codes: NDArray[Any], of_memory: NDArray[np.int64]
+        cls, values: list[Any], codes: NDArray[np.int8], of_memory: NDArray[np.int64]
     ) -> FieldCandidates:
-        return cls(values, pack(np.asarray(codes, dtype=np.int8)), int(codes.shape[1]), of_memory)
+        """From the ±1 codes of ``values``, shape (n_values, units)."""
+        return cls(values, pack(codes), int(codes.shape[1]), of_memory)
 
     def codes(self, rows: NDArray[np.intp] | None = None) -> NDArray[np.float32]:
         """The codes of ``rows`` of ``values`` (all when None) as float32, shape (rows, units)."""

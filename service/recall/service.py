@@ -641,7 +641,7 @@ class RecallService:
                     seen[norm] = len(values)
                     values.append(raw if spec.kind in ("text", "category") else _json_value(norm))
                 of_memory[i] = seen[norm]
-            codes = np.stack([codec.encode_value(spec.name, v) for v in values]).astype(np.float32)
+            codes = np.stack([codec.encode_value(spec.name, v) for v in values])
             out[spec.name] = FieldCandidates.from_codes(values, codes, of_memory)
         return out
 
