@@ -264,7 +264,7 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
         done = fixed | two_cycle
         if step + 1 < limit:
             gap = rule._one_hot_gap(rule._betas(s, known))
-            confirmed = one_hot & ~done & (runner + (n_units - top) < n_units - gap)
+            confirmed = one_hot & ~done & _stays_on_winner(runner, top, n_units, gap)
             # the step that would find nothing to change still counts, as in the plain loop
             steps[active[confirmed]] += 1
             converged[active[confirmed]] = True
@@ -295,6 +295,12 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
     )
 
 
+def _stays_on_winner(runner: Any, top: Any, n_units: int, gap: Any) -> Any:
+    """The confirming-step bound of :func:`_dense_confirmed` for a one-hot readout of a state
+    in {-1, 0, +1}ᴺ, where ‖x_w − s‖₁ = N − x_w·s = N − top: scalars or arrays alike."""
+    return runner + (n_units - top) < n_units - gap
+
+
 def _settled_at_once(
     rule: DenseRule,
     cues: NDArray[np.int8],
@@ -316,7 +322,7 @@ def _settled_at_once(
     fixed = top == n_units
     if limit > 1:
         gap = rule._one_hot_gap(betas)
-        moved = ~fixed & (runner + (n_units - top) < n_units - gap)
+        moved = ~fixed & _stays_on_winner(runner, top, n_units, gap)
     else:
         moved = np.zeros(n_cues, dtype=bool)
     if not (fixed | moved).all():
@@ -364,7 +370,7 @@ def _settle_one(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> SettleRe
         return None
     if top == n_units:  # the cue is the winning pattern: nothing changes
         steps, state, same = 1, cues.copy(), True
-    elif limit > 1 and runner + (n_units - top) < n_units - gap:
+    elif limit > 1 and _stays_on_winner(runner, top, n_units, gap):
         steps = 2  # the proven confirming step counts, as in the loop
         state, same = rule._x[best : best + 1].astype(np.int8), False
     else:
