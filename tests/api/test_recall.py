@@ -7,6 +7,7 @@ from typing import Any
 import httpx
 import pytest
 
+from service.api.schemas import RecallBatchRead, RecallRead
 from service.settings import Settings
 
 from .conftest import BASE, SEED, assert_problem
@@ -150,3 +151,16 @@ class TestRecallBatch:
             "/v1/collections/smp-nothing/recall:batch", json={"cues": [{"taxon": "Zostera"}]}
         )
         assert_problem(r, 404, "collection-not-found")
+
+
+async def test_answers_are_exactly_the_documented_models(seeded: httpx.AsyncClient) -> None:
+    # the route builds its JSON by hand (service/api/routers/recall.py); the response models
+    # in the OpenAPI document must read it back unchanged, every field present
+    cue = {"taxon": "Zostera marna", "site_code": "SMP-E2"}
+    single = (await seeded.post(f"{BASE}/recall", json={"cue": cue})).json()
+    assert RecallRead.model_validate(single).model_dump(mode="json") == single
+    batch = await seeded.post(
+        f"{BASE}/recall:batch", json={"cues": [cue, {"collector": "Ines Varga"}]}
+    )
+    body = batch.json()
+    assert RecallBatchRead.model_validate(body).model_dump(mode="json") == body
