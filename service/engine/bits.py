@@ -1,10 +1,13 @@
 """±1 rows packed one bit per unit, and exact dot products against them.
 
 Stored patterns and decoding codes are ±1 vectors: kept as bits they take a thirty-second of
-their float32 bytes. Dot products with states of -1, 0 and +1 are counted on the bits for a
-few states (popcount of the disagreements among the known units) and multiplied as float32
-for many, on a copy unpacked for that product and dropped after. Either way the results are
-exact integers.
+their float32 bytes, and a dot product with a state of -1, 0 and +1 is a count of the
+disagreements among the state's known units. A small compiled kernel (numba) counts them with
+the processor's popcount, reading each pattern's words once per state and nothing else: at
+P = 1,000, N = 1,024 on one core it took 6 µs for one state, 0.10 ms for 16 and 1.3 ms for
+256, against 70 µs, 1.2 ms and 6.4 ms for the float32 matrix product (OpenBLAS, one thread;
+twice as fast on two, still 3× behind); at P = 100,000 one state took 0.5 ms against 33 ms.
+The results are exact integers either way.
 
 Examples
 --------
@@ -18,24 +21,58 @@ array([[1., 1.]], dtype=float32)
 
 from __future__ import annotations
 
-from typing import Final
+from typing import Any
 
+import numba
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["POPCOUNT_MAX_STATES", "pack", "packed_dots", "unpack", "unpack_f32"]
+__all__ = ["pack", "packed_dots", "unpack", "unpack_f32", "words"]
 
-#: Up to this many states :func:`packed_dots` counts bits; above it multiplies. Measured at
-#: P = 1,000, N = 1,024 on one core: popcount 38 µs at 1 state, 0.32 ms at 8, and 3.3 ms at
-#: 64, against 1.1 ms for the float32 product.
-POPCOUNT_MAX_STATES: Final = 24
-#: Words of the (states, rows, words) temporary counted at a time: about a megabyte.
-_CHUNK_WORDS: Final = 1 << 17
+_M1 = np.uint64(0x5555555555555555)
+_M2 = np.uint64(0x3333333333333333)
+_M4 = np.uint64(0x0F0F0F0F0F0F0F0F)
+_H01 = np.uint64(0x0101010101010101)
 
 
-def pack(rows: NDArray[np.int8]) -> NDArray[np.uint8]:
-    """±1 rows as bits, set for +1: an eighth of the int8 bytes."""
-    return np.packbits(rows > 0, axis=1)
+@numba.njit(cache=True, nogil=True, inline="always")
+def _popcount(x: Any) -> Any:  # pragma: no cover - compiled
+    # The branch-free bit count of common practice; LLVM turns it into the popcount instruction.
+    x = x - ((x >> np.uint64(1)) & _M1)
+    x = (x & _M2) + ((x >> np.uint64(2)) & _M2)
+    x = (x + (x >> np.uint64(4))) & _M4
+    return (x * _H01) >> np.uint64(56)
+
+
+@numba.njit(
+    "void(uint64[:, ::1], uint64[:, ::1], float32[::1], uint64[:, ::1], float32[:, ::1])",
+    cache=True,
+    nogil=True,
+)
+def _count_dots(signs, known, n_known, stored, out):  # type: ignore[no-untyped-def]  # pragma: no cover - compiled
+    # out[i, p] = n_known[i] - 2 * (known units of state i where it and pattern p disagree)
+    n_states, n_words = signs.shape
+    for i in range(n_states):
+        for p in range(stored.shape[0]):
+            c = np.uint64(0)
+            for w in range(n_words):
+                c += _popcount((signs[i, w] ^ stored[p, w]) & known[i, w])
+            out[i, p] = n_known[i] - np.float32(2.0) * np.float32(c)
+
+
+def pack(rows: NDArray[Any]) -> NDArray[np.uint8]:
+    """±1 rows as bits, set for +1 (an eighth of the int8 bytes), each row zero-padded to
+    whole 64-bit words for the kernel. Rows of -1, 0 and +1 give the bits of their +1s."""
+    return _padded(np.packbits(np.asarray(rows) > 0, axis=1))
+
+
+def _padded(bits: NDArray[np.uint8]) -> NDArray[np.uint8]:
+    width = -(-bits.shape[1] // 8) * 8
+    if width == bits.shape[1]:
+        return np.ascontiguousarray(bits)
+    out = np.zeros((bits.shape[0], width), dtype=np.uint8)
+    out[:, : bits.shape[1]] = bits
+    return out
 
 
 def unpack(bits: NDArray[np.uint8], n_units: int) -> NDArray[np.int8]:
@@ -51,34 +88,25 @@ def unpack_f32(bits: NDArray[np.uint8], n_units: int) -> NDArray[np.float32]:
     return np.asfortranarray(unpack(bits, n_units), dtype=np.float32)
 
 
-def _words(bits: NDArray[np.uint8]) -> NDArray[np.uint64]:
-    """Packed bit rows as 64-bit words, zero-padded to whole words (zeros count nothing)."""
-    width = -(-bits.shape[1] // 8) * 8
-    if width != bits.shape[1] or not bits.flags.c_contiguous:
-        padded = np.zeros((bits.shape[0], width), dtype=np.uint8)
-        padded[:, : bits.shape[1]] = bits
-        bits = padded
-    return bits.view(np.uint64)
+def words(bits: NDArray[np.uint8]) -> NDArray[np.uint64]:
+    """Packed rows as 64-bit words (rows from :func:`pack` are viewed, not copied)."""
+    return _padded(bits).view(np.uint64)
 
 
-def packed_dots(
-    states: NDArray[np.float32], bits: NDArray[np.uint8], n_units: int
-) -> NDArray[np.float32]:
+def packed_dots(states: NDArray[Any], bits: NDArray[np.uint8], n_units: int) -> NDArray[np.float32]:
     """x · s for every packed row x and state s, shape (n_states, n_rows), exact integers.
 
-    ``states`` hold -1, 0 or +1 (0: unknown, contributes nothing).
+    ``states`` hold -1, 0 or +1 (0: unknown, contributes nothing); ``bits`` come from
+    :func:`pack` of rows of ``n_units`` units.
     """
-    if states.shape[0] > POPCOUNT_MAX_STATES:
-        return np.asarray(states @ unpack_f32(bits, n_units).T, dtype=np.float32)
-    stored = _words(bits)
-    signs = _words(np.packbits(states > 0, axis=1))
-    known = _words(np.packbits(states != 0, axis=1))
-    n_known = np.count_nonzero(states, axis=1).astype(np.int64)
+    states = np.asarray(states)
+    if states.ndim != 2 or states.shape[1] != n_units:
+        raise ValueError(f"states must have shape (n_states, {n_units}), got {states.shape}")
+    stored = words(bits)
     out = np.empty((states.shape[0], stored.shape[0]), dtype=np.float32)
-    step = max(1, _CHUNK_WORDS // max(1, states.shape[0] * stored.shape[1]))
-    for lo in range(0, stored.shape[0], step):
-        chunk = stored[lo : lo + step]
-        differ = (signs[:, None, :] ^ chunk[None, :, :]) & known[:, None, :]
-        counted = np.bitwise_count(differ).sum(axis=2, dtype=np.int64)
-        out[:, lo : lo + step] = n_known[:, None] - 2 * counted
+    if out.size:
+        signs = words(np.packbits(states > 0, axis=1))
+        known = words(np.packbits(states != 0, axis=1))
+        n_known = np.count_nonzero(states, axis=1).astype(np.float32)
+        _count_dots(signs, known, n_known, stored, out)
     return out

@@ -348,12 +348,12 @@ def _settle_one(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> SettleRe
     the next), in a handful of scalar steps; None where the general loop must decide.
 
     The same tests and the same numbers as :func:`_settle_dense`'s first step (the gap as
-    ``DenseRule._one_hot_gap`` computes it), for one cue: there the calls around a
-    matrix-vector product cost as much as the product.
+    ``DenseRule._one_hot_gap`` computes it), for one cue: there the array calls around
+    the dot products cost more than the products.
     """
     s = cues[0]
     n_units = s.shape[0]
-    dots = rule._x @ s.astype(np.float32)  # exact integers
+    dots = rule._dots(cues)[0]  # exact integers
     n_mem = dots.shape[0]
     best = int(dots.argmax())
     top = float(dots[best])

@@ -39,7 +39,7 @@ class FieldCandidates:
     """
 
     values: list[Any]
-    bits: NDArray[np.uint8]  # (n_values, ceil(units / 8))
+    bits: NDArray[np.uint8]  # (n_values, 8 ceil(units / 64)): whole words, see bits.pack
     units: int
     of_memory: NDArray[np.int64]
 

@@ -18,6 +18,7 @@ from numpy.typing import NDArray
 
 from service.engine import DenseRule, HebbianRule, MemoryRule, ProjectionRule, StorkeyRule
 from service.engine import rules as rules_module
+from service.engine.bits import unpack
 
 PatternMaker = Callable[[int, int], NDArray[np.int8]]
 
@@ -112,16 +113,21 @@ class TestBytesHeld:
         shapes = [v.shape for v in vars(rule).values() if isinstance(v, np.ndarray)]
         assert (p, p) not in shapes
         # W, its float64 diagonal and the patterns at one bit per unit
-        assert array_bytes(rule) == n * n * 4 + n * 8 + p * n // 8
+        assert array_bytes(rule) == n * n * 4 + n * 8 + p * n // 8  # 128 units: two whole words
         assert rule.weight_bytes_ == n * n * 4
 
-    def test_the_dense_rule_keeps_one_copy_of_its_patterns(
-        self, random_patterns: PatternMaker
+    @pytest.mark.parametrize("n_units", [64, 100])
+    def test_the_dense_rule_keeps_float32_rows_and_their_bits_only(
+        self, random_patterns: PatternMaker, n_units: int
     ) -> None:
-        X = random_patterns(300, 64)
+        X = random_patterns(300, n_units)
         rule = DenseRule().fit(X).add(X[0] * -1).remove(5)
-        assert array_bytes(rule) == rule.weight_bytes_ == 300 * 64 * 4
+        words = -(-n_units // 64)  # each row's bits padded to whole 64-bit words
+        assert rule.weight_bytes_ == 300 * n_units * 4
+        assert array_bytes(rule) == 300 * n_units * 4 + 300 * words * 8
         assert rule.patterns_f32_ is rule._x  # recall reads the kept array, not a copy
+        # the two copies stay the same patterns through fit, add and remove
+        assert np.array_equal(unpack(rule._bits, n_units), rule.patterns_)
 
     @pytest.mark.parametrize("keep_diagonal", [False, True])
     def test_the_storkey_rule_keeps_one_weight_matrix(
@@ -144,7 +150,8 @@ class TestBytesHeld:
         rule.pattern_dots(np.ones((64, 48), dtype=np.float32))
         assert rule.held_bytes_ == array_bytes(rule)
         if not isinstance(rule, DenseRule):
-            assert rule.held_bytes_ == rule.weight_bytes_ + 20 * 6 + (
+            # the 20 patterns at one bit per unit, 48 bits padded to one 64-bit word each
+            assert rule.held_bytes_ == rule.weight_bytes_ + 20 * 8 + (
                 48 * 8 if hasattr(rule, "diagonal_") else 0
             )
 
@@ -160,7 +167,8 @@ class TestPatternDots:
         n_units: int,
         n_states: int,
     ) -> None:
-        # popcount (few states) and float32 product (many) against numpy's int64 matmul
+        # the popcount kernel against numpy's int64 matmul, for widths short of, at and past a
+        # whole 64-bit word
         X = random_patterns(min(30, n_units // 2 + 2), n_units)
         rule = make().fit(X) if make is not ProjectionRule else make().fit(X[: n_units // 2])
         rng = np.random.default_rng(n_units * 100 + n_states)
