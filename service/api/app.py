@@ -32,6 +32,7 @@ from service.storage.migrate import current_revision, head_revision, upgrade_to_
 from . import docs
 from .batching import RecallQueue
 from .bodies import BodyLimitMiddleware
+from .direct import DirectRecallMiddleware
 from .errors import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_error_handlers
 from .heap import HeapFreezer
 from .lifecycle import Lifecycle
@@ -155,11 +156,13 @@ def _problem_media_types(schema: dict[str, Any]) -> dict[str, Any]:
     return schema
 
 
-def create_app(settings: Settings, *, migrate: bool = False) -> FastAPI:
+def create_app(settings: Settings, *, migrate: bool = False, direct_recall: bool = True) -> FastAPI:
     """Build the application for ``settings``.
 
     ``migrate=True`` applies pending migrations at startup (the demo and the tests); without it
     the app refuses to start on a database that is not at the newest migration.
+    ``direct_recall=False`` sends single-cue recalls through the framework's route too (the
+    tests compare the two paths; see :mod:`service.api.direct`).
     """
     app = FastAPI(
         title="Cuebank",
@@ -181,6 +184,9 @@ def create_app(settings: Settings, *, migrate: bool = False) -> FastAPI:
     app.include_router(metrics_router)
     app.include_router(problems.router)
     app.include_router(docs.router)
+    # Innermost: ordinary single-cue recalls are answered here, after the body checks and the
+    # authentication, without the framework's routing.
+    app.add_middleware(DirectRecallMiddleware, enabled=direct_recall)
     # A body is capped before any route reads it; the last middleware added is the outermost,
     # so the catch-all for unexpected errors wraps the body limit too.
     app.add_middleware(

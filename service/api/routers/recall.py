@@ -41,7 +41,8 @@ RECALL_PROBLEMS = (
 RecallKey = tuple[str, str, RecallOptions]
 
 
-def _options(spec: RecallOptionsSpec) -> RecallOptions:
+def recall_options(spec: RecallOptionsSpec) -> RecallOptions:
+    """The engine's options for the request's."""
     return RecallOptions(
         mode=spec.mode,
         clamp=spec.clamp,
@@ -85,8 +86,9 @@ def _json(document: Any) -> Response:
     )
 
 
-def _count(request: Request, results: list[RecallResult]) -> None:
-    verdicts = request.app.state.metrics.verdicts
+def count_verdicts(metrics: Any, results: list[RecallResult]) -> None:
+    """Add ``results`` to the verdict counters of the app's ``metrics``."""
+    verdicts = metrics.verdicts
     for (verdict, reason), n in Counter((r.verdict, r.reason) for r in results).items():
         verdicts.labels(verdict, reason).inc(n)
 
@@ -109,8 +111,8 @@ async def recall(
     one matrix product; each is answered as if it came alone.
     """
     queue: RecallQueue[RecallKey, RecallResult] = request.app.state.recall_queue
-    result = await queue.submit((team, name, _options(body.options)), dict(body.cue))
-    _count(request, [result])
+    result = await queue.submit((team, name, recall_options(body.options)), dict(body.cue))
+    count_verdicts(request.app.state.metrics, [result])
     return _json(recall_document(result))
 
 
@@ -135,7 +137,7 @@ async def recall_batch(
     """Recall several cues at once; results come in the order of the cues."""
     cues = [dict(c) for c in body.cues]
     heap: HeapFreezer = request.app.state.heap
-    options = _options(body.options)
+    options = recall_options(body.options)
 
     def run() -> list[RecallResult]:
         answers = service.recall(team, name, cues, options)
@@ -143,5 +145,5 @@ async def recall_batch(
         return answers
 
     results = await anyio.to_thread.run_sync(run, limiter=request.app.state.engine_limiter)
-    _count(request, results)
+    count_verdicts(request.app.state.metrics, results)
     return _json({"results": [recall_document(r) for r in results]})
