@@ -25,7 +25,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.recall.auth import Principal
 
-from .routers.recall import count_verdicts, recall, recall_document, recall_options
+from .routers.recall import answer_bytes, count_verdicts, recall, recall_options
 from .routers.recall import router as recall_router
 from .schemas import RecallRequest
 
@@ -122,7 +122,7 @@ class DirectRecallMiddleware:
         except Exception:
             return None
         count_verdicts(state.metrics, [result])
-        return orjson.dumps(recall_document(result), option=orjson.OPT_SERIALIZE_NUMPY)
+        return answer_bytes(result)
 
 
 def _replay(first: Message, receive: Receive) -> Receive:

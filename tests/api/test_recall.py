@@ -7,7 +7,13 @@ from typing import Any
 import httpx
 import pytest
 
-from service.api.schemas import RecallBatchRead, RecallRead
+from service.api.schemas import (
+    DecodedFieldRead,
+    NeighbourRead,
+    RecallBatchRead,
+    RecalledMemoryRead,
+    RecallRead,
+)
 from service.settings import Settings
 
 from .conftest import BASE, SEED, assert_problem
@@ -154,13 +160,35 @@ class TestRecallBatch:
 
 
 async def test_answers_are_exactly_the_documented_models(seeded: httpx.AsyncClient) -> None:
-    # the route builds its JSON by hand (service/api/routers/recall.py); the response models
-    # in the OpenAPI document must read it back unchanged, every field present
-    cue = {"taxon": "Zostera marna", "site_code": "SMP-E2"}
-    single = (await seeded.post(f"{BASE}/recall", json={"cue": cue})).json()
-    assert RecallRead.model_validate(single).model_dump(mode="json") == single
-    batch = await seeded.post(
-        f"{BASE}/recall:batch", json={"cues": [cue, {"collector": "Ines Varga"}]}
-    )
+    # the route writes the engine's result dataclasses as they are (service/api/routers/
+    # recall.py): the response models in the OpenAPI document must read every answer back
+    # unchanged, every field present, in the models' order
+    exact = next(iter(SEED["memories"].values()))
+    cues = [
+        {"taxon": "Zostera marna", "site_code": "SMP-E2"},
+        exact,
+        {"collector": "Ines Varga"},
+        {"depth_m": 499},
+    ]
+    answers = []
+    for cue in cues:
+        for options in ({}, {"include_energy": True, "top_k": 5}):
+            r = await seeded.post(f"{BASE}/recall", json={"cue": cue, "options": options})
+            assert r.status_code == 200, r.text
+            answers.append(r.json())
+    batch = await seeded.post(f"{BASE}/recall:batch", json={"cues": cues})
     body = batch.json()
     assert RecallBatchRead.model_validate(body).model_dump(mode="json") == body
+    answers += body["results"]
+    assert {a["verdict"] for a in answers} >= {"recalled"}
+    assert any(a["memory"] is not None for a in answers)
+    assert any(a["energy"] is not None for a in answers)
+    for answer in answers:
+        assert RecallRead.model_validate(answer).model_dump(mode="json") == answer
+        assert list(answer) == list(RecallRead.model_fields)
+        if answer["memory"] is not None:
+            assert list(answer["memory"]) == list(RecalledMemoryRead.model_fields)
+        for field in answer["fields"].values():
+            assert list(field) == list(DecodedFieldRead.model_fields)
+        for neighbour in answer["nearest"]:
+            assert list(neighbour) == list(NeighbourRead.model_fields)

@@ -52,38 +52,20 @@ def recall_options(spec: RecallOptionsSpec) -> RecallOptions:
     )
 
 
-def recall_document(result: RecallResult) -> dict[str, Any]:
-    """``result`` as its JSON document, the shape of :class:`RecallRead` (built directly: a
-    large batch answer skips a round through the response model)."""
-    memory = result.memory
-    return {
-        "verdict": result.verdict,
-        "reason": result.reason,
-        "memory": ({"key": memory.key, "fields": memory.fields} if memory is not None else None),
-        "best_key": result.best_key,
-        "overlap": result.overlap,
-        "margin": result.margin,
-        "cue_overlap": result.cue_overlap,
-        "cue_margin": result.cue_margin,
-        "cue_agreement": result.cue_agreement,
-        "field_agreement": result.field_agreement,
-        "fields": {
-            name: {"value": f.value, "score": f.score, "z": f.z}
-            for name, f in result.fields.items()
-        },
-        "nearest": [{"key": n.key, "overlap": n.overlap} for n in result.nearest],
-        "steps": result.steps,
-        "converged": result.converged,
-        "cycle_length": result.cycle_length,
-        "revision": result.revision,
-        "energy": result.energy,
-    }
+def answer_bytes(document: Any) -> bytes:
+    """``document`` as the JSON body of an answer.
+
+    A :class:`RecallResult` is written as it is: orjson writes a dataclass field by field, in
+    order, and the result's fields (and its memory's, fields' and neighbours') carry exactly
+    the names and order of :class:`RecallRead`, so no dictionary is built per answer, which
+    cost three times the encoding for a large batch. The tests read every answer back
+    through the response models unchanged.
+    """
+    return orjson.dumps(document, option=orjson.OPT_SERIALIZE_NUMPY)
 
 
 def _json(document: Any) -> Response:
-    return Response(
-        orjson.dumps(document, option=orjson.OPT_SERIALIZE_NUMPY), media_type="application/json"
-    )
+    return Response(answer_bytes(document), media_type="application/json")
 
 
 def count_verdicts(metrics: Any, results: list[RecallResult]) -> None:
@@ -113,7 +95,7 @@ async def recall(
     queue: RecallQueue[RecallKey, RecallResult] = request.app.state.recall_queue
     result = await queue.submit((team, name, recall_options(body.options)), dict(body.cue))
     count_verdicts(request.app.state.metrics, [result])
-    return _json(recall_document(result))
+    return _json(result)
 
 
 @router.post(
@@ -146,4 +128,4 @@ async def recall_batch(
 
     results = await anyio.to_thread.run_sync(run, limiter=request.app.state.engine_limiter)
     count_verdicts(request.app.state.metrics, results)
-    return _json({"results": [recall_document(r) for r in results]})
+    return _json({"results": results})
