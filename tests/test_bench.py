@@ -108,6 +108,15 @@ class TestQuickRun:
             assert row["non_2xx"] >= 0
         batch = [r for r in sec["rows"] if r["endpoint"].startswith("POST recall:batch")]
         assert all(r["cues_per_second"] > r["requests_per_second"] for r in batch)
+        # the batch figures are read against the engine run in as many processes at once
+        side_by_side = {
+            k: v
+            for k, v in sec["summary"].items()
+            if k.startswith("in_process_") and k.endswith("p_cues_per_second")
+        }
+        assert side_by_side
+        assert all(v > 0 for v in side_by_side.values())
+        assert all(r["ratio_to"].startswith("in-process") for r in batch)
 
     def test_growth_reports_a_fitted_exponent_for_each_family(self, report: dict[str, Any]) -> None:
         summary = report["sections"]["growth"]["summary"]
