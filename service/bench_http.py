@@ -11,9 +11,10 @@ concurrency:
 * single-cue ``POST .../recall`` req/s and latency, as a ratio to the first;
 * ``POST .../recall:batch`` cues/s, as a ratio to the engine's own cues/s called in-process on
   the same batches (one BLAS thread, as in a worker), in as many processes at once as the
-  server has workers the cores can run: two processes side by side recall less than twice
-  what one alone does (measured here: about 0.8 of twice), so a plain multiple would charge
-  the HTTP layer for the hardware's own sharing. The multiple is reported beside it.
+  server has workers the cores can run, so both sides of the ratio run with the same
+  parallelism on the same cores at the same time (one process's rate times the workers
+  assumes they share nothing: caches, memory bus, clock). The multiple is reported beside
+  it; on the 2-core machines here the two differed by noise more than by sharing.
 
 The load comes from ``wrk`` when it is on PATH (C, a Lua script for the POST bodies), otherwise
 from a few client processes, each an asyncio loop driving its share of the connections with
