@@ -38,6 +38,29 @@ async def test_a_lone_cue_runs_at_once_and_gets_its_answer() -> None:
     assert (queue.runs, queue.cues_run) == (1, 1)
 
 
+@pytest.mark.parametrize("turns", [0, 2, 4])
+async def test_cues_arriving_within_the_gathering_turns_share_the_first_run(turns: int) -> None:
+    # a cue submitted k loop turns after the first joins its run when k < gather_turns;
+    # with no turns each cue that finds the queue idle starts its own run
+    run = Recorder()
+    queue = RecallQueue(run, max_batch=8, gather_turns=turns)
+    first = asyncio.ensure_future(queue.submit("k", 0))
+    await asyncio.sleep(0)  # the first submit is queued and its drain scheduled
+    second = asyncio.ensure_future(queue.submit("k", 1))
+    assert await asyncio.wait_for(asyncio.gather(first, second), 5.0) == [("k", 0), ("k", 2)]
+    assert run.batches == ([[0, 1]] if turns >= 2 else [[0], [1]])
+
+
+async def test_gathering_stops_once_a_run_is_full() -> None:
+    run = Recorder()
+    queue = RecallQueue(run, max_batch=2, gather_turns=1000)
+    answers = await asyncio.wait_for(
+        asyncio.gather(*(queue.submit("k", i) for i in range(5))), 5.0
+    )
+    assert answers == [("k", 2 * i) for i in range(5)]
+    assert run.batches == [[0, 1], [2, 3], [4]]
+
+
 async def test_cues_arriving_during_a_run_go_together_in_the_next() -> None:
     gate = threading.Event()
     run = Recorder(gate)
