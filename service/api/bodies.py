@@ -11,8 +11,9 @@ import json
 import math
 import re
 from collections.abc import AsyncIterator
-from typing import Any
+from typing import Any, Final
 
+import orjson
 from starlette.datastructures import Headers
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
@@ -21,6 +22,8 @@ from service.recall.errors import LimitExceeded, ServiceError
 from .errors import MalformedBody, MalformedJson, problem_response
 
 __all__ = [
+    "JSON_DOCUMENT",
+    "UNPARSED",
     "BodyLimitMiddleware",
     "body_too_large",
     "check_json",
@@ -30,6 +33,9 @@ __all__ = [
     "read_capped",
     "strict_json_loads",
 ]
+
+#: Where the body limit leaves a request's parsed JSON body in ``scope["state"]``.
+JSON_DOCUMENT: Final = "json_document"
 
 # A JSON string: quotes around anything but a quote or backslash, or a backslash escape.
 _JSON_STRING = re.compile(rb'"[^"\\]*(?:\\.[^"\\]*)*"', re.DOTALL)
@@ -99,22 +105,86 @@ def strict_json_loads(text: str | bytes) -> Any:
     return json.loads(text, object_pairs_hook=_object, parse_constant=_constant, parse_float=_float)
 
 
-def check_json(body: bytes, max_depth: int) -> None:
-    """Refuse a JSON body that nests too deep (422) or that strict JSON rejects (400)."""
+#: What :func:`check_json` gives when it did not keep a parsed document.
+UNPARSED: Final = object()
+#: Nineteen digits in a row: an integer orjson might read as a float (Python's reader keeps it
+#: an int), or a number long enough to leave to the careful path.
+_LONG_DIGITS = re.compile(rb"[0-9]{19}")
+
+
+def _shape(document: Any) -> tuple[int, int, bool]:
+    """Nesting depth, object members in all, and whether every float is finite."""
+    depth = members = 0
+    finite = True
+    stack: list[tuple[Any, int]] = [(document, 1)]
+    while stack:
+        value, level = stack.pop()
+        if isinstance(value, dict):
+            depth = max(depth, level)
+            members += len(value)
+            stack.extend((v, level + 1) for v in value.values())
+        elif isinstance(value, list):
+            depth = max(depth, level)
+            stack.extend((v, level + 1) for v in value)
+        elif isinstance(value, float) and not math.isfinite(value):
+            finite = False
+    return depth, members, finite
+
+
+def _depth_exceeded(max_depth: int) -> LimitExceeded:
+    return LimitExceeded(
+        f"the JSON body nests arrays and objects more than {max_depth} deep, the limit "
+        "(max_json_depth)",
+        limit="max_json_depth",
+        value=max_depth + 1,
+        maximum=max_depth,
+    )
+
+
+def _quick(body: bytes, max_depth: int) -> Any:
+    """The document, parsed once by orjson, when it is plainly what the careful path would
+    accept; else :data:`UNPARSED` (and the careful path decides, with its own messages).
+
+    Plainly: orjson reads it (it refuses NaN, Infinity, lone surrogates and a byte-order
+    mark, all of which the careful path answers itself), no run of 19 digits outside the
+    strings (an integer orjson could read as a float), as many object members as colons
+    outside the strings (a duplicate member would leave one fewer), and the depth limit
+    checked on the parsed containers.
+    """
+    outside = _JSON_STRING.sub(b"", body)
+    if _LONG_DIGITS.search(outside):
+        return UNPARSED
+    try:
+        document = orjson.loads(body)
+    except orjson.JSONDecodeError:
+        return UNPARSED
+    depth, members, finite = _shape(document)
+    if depth > max_depth:
+        raise _depth_exceeded(max_depth)
+    if not finite or members != outside.count(b":"):
+        return UNPARSED
+    return document
+
+
+def check_json(body: bytes, max_depth: int) -> Any:
+    """Refuse a JSON body that nests too deep (422) or that strict JSON rejects (400).
+
+    Returns the parsed document when one parse settled it (the common case), else
+    :data:`UNPARSED`; a body the checks let through may still be invalid JSON, which the
+    route's own parser reports with its position.
+    """
+    document = _quick(body, max_depth)
+    if document is not UNPARSED:
+        return document
     if json_depth_over(body, max_depth):
-        raise LimitExceeded(
-            f"the JSON body nests arrays and objects more than {max_depth} deep, the limit "
-            "(max_json_depth)",
-            limit="max_json_depth",
-            value=max_depth + 1,
-            maximum=max_depth,
-        )
+        raise _depth_exceeded(max_depth)
     try:
         strict_json_loads(body)
     except json.JSONDecodeError:
-        return  # the route's own parser reports the position, as it always has
+        return UNPARSED  # the route's own parser reports the position, as it always has
     except (ValueError, RecursionError) as exc:
         raise MalformedJson(f"the request body is not valid JSON: {exc}") from None
+    return UNPARSED
 
 
 def check_lines(raw: bytes, maximum: int, limit: str = "max_import_line_bytes") -> None:
@@ -230,7 +300,10 @@ class BodyLimitMiddleware:
             body, trailing = await self._read(receive)
             if body and _is_json(headers):
                 check_utf8(body)
-                check_json(body, self.max_json_depth)
+                document = check_json(body, self.max_json_depth)
+                if document is not UNPARSED:
+                    # for the short paths of service.api.direct; routes parse the body again
+                    scope.setdefault("state", {})[JSON_DOCUMENT] = document
         except ServiceError as error:
             await problem_response(error, path)(scope, receive, send)
             return

@@ -1,13 +1,15 @@
-"""A short path for the single-cue recall, the service's busiest call.
+"""Short paths for the two recall calls, the service's busiest.
 
 Routing a request through the framework (matching every route, solving the dependency graph,
-validating and serialising through the models) costs several times what the recall itself
-costs once the engine batches concurrent cues. This middleware sits inside the body limit and
-the authentication, so the body is already read and checked and the caller known, and answers
-``POST /v1/collections/{name}/recall`` itself when everything is ordinary: a key with the read
-scope, a JSON body that the route's own request model accepts, and a recall that succeeds. It
-uses the route's own pieces (request model, option mapping, run queue, response document), so
-its answers are the route's, byte for byte; the tests hold the two to each other.
+parsing the body a second time and validating it through the field machinery) costs several
+times what a batched recall of one cue costs, and a good part of what the HTTP layer adds to a
+batch. This middleware sits inside the body limit and the authentication, so the body is
+already read, checked and parsed once (``service.api.bodies``) and the caller known, and
+answers ``POST /v1/collections/{name}/recall`` and ``.../recall:batch`` itself when everything
+is ordinary: a key with the read scope, a JSON body the route's own request model accepts, and
+a recall that succeeds. It uses the routes' own pieces (request models, option mapping, run
+queue, engine limiter, answer encoding), so its answers are the routes', byte for byte; the
+tests hold the two to each other.
 
 Anything else, and every error, goes on to the framework's route with the body replayed, which
 answers it as documented (a refused cue is settled a second time there; errors are the rare
@@ -17,23 +19,32 @@ case and a recall changes nothing, so running it again is safe).
 from __future__ import annotations
 
 import re
+from typing import Any
 
-import orjson
-from pydantic import ValidationError
+import anyio.to_thread
+from pydantic import BaseModel, ValidationError
 from starlette.routing import BaseRoute
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.recall.auth import Principal
+from service.recall.models import RecallResult
 
-from .routers.recall import answer_bytes, count_verdicts, recall, recall_options
+from .bodies import JSON_DOCUMENT
+from .routers.recall import answer_bytes, count_verdicts, recall, recall_batch, recall_options
 from .routers.recall import router as recall_router
-from .schemas import RecallRequest
+from .schemas import RecallBatchRequest, RecallRequest
 
 __all__ = ["DirectRecallMiddleware"]
 
-_PATH = re.compile(r"/v1/collections/([^/]+)/recall")
-#: The route answered here, as the router would record it in the scope.
-_ROUTE: BaseRoute = next(r for r in recall_router.routes if getattr(r, "endpoint", None) is recall)
+_PATH = re.compile(r"/v1/collections/([^/]+)/recall(:batch)?")
+
+
+def _route(endpoint: Any) -> BaseRoute:
+    """The route of ``endpoint``, as the router records it in the scope."""
+    return next(r for r in recall_router.routes if getattr(r, "endpoint", None) is endpoint)
+
+
+_SINGLE, _BATCH = _route(recall), _route(recall_batch)
 
 
 def _json_body(scope: Scope) -> bool:
@@ -45,7 +56,7 @@ def _json_body(scope: Scope) -> bool:
 
 
 class DirectRecallMiddleware:
-    """Answers ordinary single-cue recalls without the framework's routing (see the module).
+    """Answers ordinary recalls without the framework's routing (see the module).
 
     Parameters
     ----------
@@ -71,30 +82,39 @@ class DirectRecallMiddleware:
             and scope["type"] == "http"
             and scope["method"] == "POST"
             and not scope.get("root_path")
-            and scope["path"].endswith("/recall")
+            and "/recall" in scope["path"]
         ):
             await self.app(scope, receive, send)
             return
         match = _PATH.fullmatch(scope["path"])
-        principal = scope.get("state", {}).get("principal")
+        state = scope.get("state", {})
+        principal = state.get("principal")
+        document = state.get(JSON_DOCUMENT)
         if (
             match is None
             or not isinstance(principal, Principal)
             or not principal.allows("read")
+            or not isinstance(document, dict)
             or not _json_body(scope)
         ):
             await self.app(scope, receive, send)
             return
         message = await receive()
-        body: bytes = message.get("body", b"")
         if message["type"] != "http.request" or message.get("more_body", False):
             await self.app(scope, _replay(message, receive), send)
             return
-        answer = await self._answer(scope, match.group(1), principal.team, body)
+        name, batch = match.group(1), match.group(2) is not None
+        try:
+            if batch:
+                answer = await self._batch(scope, name, principal.team, document)
+            else:
+                answer = await self._single(scope, name, principal.team, document)
+        except Exception:
+            answer = None
         if answer is None:
             await self.app(scope, _replay(message, receive), send)
             return
-        scope["route"] = _ROUTE  # for the access log and the metrics, as the router sets it
+        scope["route"] = _BATCH if batch else _SINGLE  # for the access log and the metrics
         await send(
             {
                 "type": "http.response.start",
@@ -108,21 +128,45 @@ class DirectRecallMiddleware:
         await send({"type": "http.response.body", "body": answer})
         self.answered += 1
 
-    async def _answer(self, scope: Scope, name: str, team: str, body: bytes) -> bytes | None:
-        """The route's 200 body, or None where the route must answer (any error)."""
-        try:
-            request = RecallRequest.model_validate(orjson.loads(body))
-        except (orjson.JSONDecodeError, ValidationError, TypeError, ValueError):
+    async def _single(
+        self, scope: Scope, name: str, team: str, document: dict[str, Any]
+    ) -> bytes | None:
+        request = _valid(RecallRequest, document)
+        if not isinstance(request, RecallRequest):
             return None
         state = scope["app"].state
-        try:
-            result = await state.recall_queue.submit(
-                (team, name, recall_options(request.options)), dict(request.cue)
-            )
-        except Exception:
-            return None
+        result = await state.recall_queue.submit(
+            (team, name, recall_options(request.options)), dict(request.cue)
+        )
         count_verdicts(state.metrics, [result])
         return answer_bytes(result)
+
+    async def _batch(
+        self, scope: Scope, name: str, team: str, document: dict[str, Any]
+    ) -> bytes | None:
+        request = _valid(RecallBatchRequest, document)
+        if not isinstance(request, RecallBatchRequest):
+            return None
+        state = scope["app"].state
+        service, heap = state.service, state.heap
+        cues = [dict(c) for c in request.cues]
+        options = recall_options(request.options)
+
+        def run() -> list[RecallResult]:
+            answers: list[RecallResult] = service.recall(team, name, cues, options)
+            heap.after_run()
+            return answers
+
+        results = await anyio.to_thread.run_sync(run, limiter=state.engine_limiter)
+        count_verdicts(state.metrics, results)
+        return answer_bytes({"results": results})
+
+
+def _valid(model: type[BaseModel], document: dict[str, Any]) -> BaseModel | None:
+    try:
+        return model.model_validate(document)
+    except (ValidationError, TypeError, ValueError):
+        return None
 
 
 def _replay(first: Message, receive: Receive) -> Receive:

@@ -5,10 +5,15 @@ from __future__ import annotations
 import json
 from typing import Any
 
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.api.bodies import json_depth_over
+from service.api.bodies import UNPARSED, check_json, json_depth_over, strict_json_loads
+from service.api.errors import MalformedJson
+from service.recall.errors import LimitExceeded
+
+REFUSED = object()
 
 # Strings full of the characters the scan must not be fooled by.
 TRICKY = st.text(alphabet=st.sampled_from(list('[]{}"\\ab\n')), max_size=8)
@@ -34,3 +39,67 @@ def test_depth_scan_agrees_with_the_parsed_value(
 ) -> None:
     body = json.dumps(value, ensure_ascii=ascii_only).encode("utf-8")
     assert json_depth_over(body, maximum) == (_depth(json.loads(body)) > maximum)
+
+
+# Documents with the numbers a second parser could read otherwise: big and negative integers,
+# floats near the double's edges, and keys that collide once duplicates are spliced in.
+NUMBERS = (
+    st.integers(min_value=-(10**30), max_value=10**30)
+    | st.floats(allow_nan=False, allow_infinity=False)
+    | st.sampled_from([0.0, -0.0, 1e308, 5e-324, 2**63, 2**64, -(2**63) - 1])
+)
+KEYS = st.sampled_from(["a", "b", "cue", "\u00e9", "x:y", '"q"'])
+DOCUMENTS = st.recursive(
+    st.none() | st.booleans() | NUMBERS | TRICKY,
+    lambda inner: st.lists(inner, max_size=3) | st.dictionaries(KEYS, inner, max_size=3),
+    max_leaves=30,
+)
+
+
+def _same_types(a: Any, b: Any) -> bool:
+    if type(a) is not type(b):
+        return False
+    if isinstance(a, dict):
+        return list(a) == list(b) and all(_same_types(a[k], b[k]) for k in a)
+    if isinstance(a, list):
+        return len(a) == len(b) and all(_same_types(x, y) for x, y in zip(a, b, strict=True))
+    return bool(a == b or (isinstance(a, float) and str(a) == str(b)))
+
+
+@settings(max_examples=400, deadline=None)
+@given(DOCUMENTS, st.integers(min_value=1, max_value=6), st.booleans(), st.booleans())
+def test_a_document_parsed_once_is_what_the_strict_parser_reads(
+    value: Any, maximum: int, ascii_only: bool, duplicate: bool
+) -> None:
+    # check_json hands on orjson's document only where it is exactly what Python's strict
+    # reader gives (the reference): same values, same types (an int stays an int), same
+    # member order; a duplicated member, too deep a body and other doubts take the careful
+    # path and its own answer
+    body = json.dumps(value, ensure_ascii=ascii_only).encode("utf-8")
+    if duplicate and body.startswith(b"{") and body != b"{}":
+        body = b'{"a": 1, "a": 2, ' + body[1:]
+    try:
+        reference: Any = strict_json_loads(body)
+    except ValueError:
+        reference = REFUSED
+    try:
+        got = check_json(body, maximum)
+    except (LimitExceeded, MalformedJson):
+        got = REFUSED
+    if got is UNPARSED:
+        return  # the careful path decided; its answers are the ones tested elsewhere
+    if _depth(value) > maximum or reference is REFUSED:
+        assert got is REFUSED
+    else:
+        assert _same_types(got, reference), (got, reference)
+
+
+def test_the_careful_path_still_names_duplicates_and_depth() -> None:
+    with pytest.raises(MalformedJson, match="appears twice"):
+        check_json(b'{"cue": {"a": 1, "a": 2}}', 8)
+    with pytest.raises(LimitExceeded, match="max_json_depth"):
+        check_json(b"[[[[[1]]]]]", 4)
+    assert check_json(b'{"n": 123456789012345678901234567890}', 8) is UNPARSED
+    assert check_json(b'{"cue": {"a": "x: y", "b": [1, 2.5]}}', 8) == {
+        "cue": {"a": "x: y", "b": [1, 2.5]}
+    }

@@ -1,4 +1,4 @@
-"""The short path for single-cue recalls (``service.api.direct``) answers as the route does.
+"""The short paths for recalls (``service.api.direct``) answer as the routes do.
 
 Two apps on one database, one with the short path and one without, are sent the same
 requests: ordinary recalls, every kind of refusal and requests the short path must leave to
@@ -38,6 +38,22 @@ ORDINARY: list[Any] = [
     {"cue": {"taxon": FIRST["taxon"]}, "options": {"include_energy": True, "max_steps": 3}},
     {"cue": {"taxon": FIRST["taxon"]}, "options": {"mode": "async", "clamp": True}},
     *({"cue": dict(list(fields.items())[:2])} for fields in list(MEMORIES.values())[:6]),
+]
+
+#: Batch bodies the short path answers itself.
+BATCHES: list[Any] = [
+    {"cues": [b["cue"] for b in ORDINARY]},
+    {"cues": [FIRST], "options": {"top_k": 2, "include_energy": True}},
+    {"cues": [dict(list(f.items())[1:]) for f in MEMORIES.values()] * 3},
+]
+
+#: Batch bodies the route must answer.
+BATCHES_REFUSED: list[Any] = [
+    {"cues": []},
+    {"cues": [FIRST, {"no_such_field": 1}]},
+    {"cues": [FIRST], "options": {"mode": "sideways"}},
+    {"cue": FIRST},
+    {"cues": FIRST},
 ]
 
 #: Bodies the route must answer: refusals of every kind.
@@ -220,3 +236,48 @@ async def test_the_access_log_and_metrics_name_the_route_template(
     metrics = (await fast.get("/metrics")).text
     assert 'route="/v1/collections/{name}/recall",status="200"' in metrics
     assert 'verdict="recalled"' in metrics
+
+
+async def test_ordinary_batches_are_answered_by_the_short_path_as_the_route_answers(
+    pair: tuple[httpx.AsyncClient, httpx.AsyncClient],
+) -> None:
+    for body in BATCHES:
+        fast, slow = await _both(pair, json.dumps(body).encode(), path=f"{BASE}/recall:batch")
+        assert fast.status_code == 200, fast.text
+        assert len(fast.json()["results"]) == len(body["cues"])
+        _same(fast, slow)
+    assert _short_path(_app(pair[0])).answered == len(BATCHES)
+
+
+@pytest.mark.parametrize("body", BATCHES_REFUSED, ids=range(len(BATCHES_REFUSED)))
+async def test_refused_batches_come_from_the_route_unchanged(
+    pair: tuple[httpx.AsyncClient, httpx.AsyncClient], body: Any
+) -> None:
+    fast, slow = await _both(pair, json.dumps(body).encode(), path=f"{BASE}/recall:batch")
+    assert fast.status_code >= 400
+    _same(fast, slow)
+    assert _short_path(_app(pair[0])).answered == 0
+
+
+async def test_a_batch_over_the_limit_is_refused_by_the_route(
+    make_client: Any,
+) -> None:
+    client = await make_client(max_batch=3)
+    await seed_specimens(client)
+    r = await client.post(f"{BASE}/recall:batch", json={"cues": [FIRST] * 4})
+    assert r.status_code == 413
+    assert r.json()["limit"] == "max_batch"
+    assert _short_path(client.app).answered == 0
+    ok = await client.post(f"{BASE}/recall:batch", json={"cues": [FIRST] * 3})
+    assert ok.status_code == 200
+    assert _short_path(client.app).answered == 1
+
+
+async def test_a_body_the_single_parse_leaves_to_the_careful_path_still_gets_answered(
+    pair: tuple[httpx.AsyncClient, httpx.AsyncClient],
+) -> None:
+    # a 30-digit number is read by the route's own parser: the short path steps aside
+    body = b'{"cue": {"depth_m": 123456789012345678901234567890}}'
+    fast, slow = await _both(pair, body)
+    _same(fast, slow)
+    assert _short_path(_app(pair[0])).answered == 0
