@@ -16,6 +16,12 @@ concurrency:
   assumes they share nothing: caches, memory bus, clock). The multiple is reported beside
   it; on the 2-core machines here the two differed by noise more than by sharing.
 
+The machines this runs on are shared and their speed drifts by a fifth or more within a minute,
+so the figures compared are measured in turns: each server's three loads run in two rounds of
+half the time each (one round with ``--quick``), and the in-process reference is measured
+before the first batch load and after each one, with the server idle beside it. Rates come
+from the totals of the rounds, p99 is the worst round's.
+
 The load comes from ``wrk`` when it is on PATH (C, a Lua script for the POST bodies), otherwise
 from a few client processes, each an asyncio loop driving its share of the connections with
 ``httpx``. The report names which one ran: the Python client costs far more CPU per request,
@@ -45,6 +51,7 @@ import re
 import shutil
 import signal
 import socket
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -271,34 +278,58 @@ def _in_process_rate(prep: _Prepared, seconds: float) -> tuple[float, str]:
         return _recall_rate(prep.service, prep.team, prep.batches, seconds), note
 
 
-def _rate_in_child(job: tuple[str, str, list[list[dict[str, Any]]], float, float]) -> float:
-    """:func:`_recall_rate` in a fresh process on the prepared database (a pool's task)."""
+_CHILD: Any = None  # a pool child's RecallService, built once by _child_init
+
+
+def _child_init(data_dir: str) -> None:
+    """Pool initializer: open the prepared database once per child process."""
     from service.recall.service import RecallService
     from service.settings import Settings
     from service.storage.db import make_engine, make_session_factory
 
-    data_dir, team, batches, seconds, start_at = job
+    global _CHILD
     settings = Settings(data_dir=Path(data_dir), database_url=None, key_pepper=None)
-    engine = make_engine(settings.resolved_database_url)
-    limit, _ = _blas_one_thread()
-    try:
-        with limit:
-            service = RecallService(settings, make_session_factory(engine))
-            return _recall_rate(service, team, batches, seconds, start_at)
-    finally:
-        engine.dispose()
+    _CHILD = RecallService(
+        settings, make_session_factory(make_engine(settings.resolved_database_url))
+    )
+    _blas_one_thread()[0].__enter__()  # for the child's whole life, as in a worker
 
 
-def _concurrent_rate(prep: _Prepared, seconds: float, processes: int) -> float:
-    """Summed cues/s of ``processes`` processes recalling at the same time, as the server's
-    workers do: they share the cores' caches and the memory bus, which one process alone
-    times the count does not show."""
-    if processes == 1:
-        return _in_process_rate(prep, seconds)[0]
-    start_at = time.time() + 5.0  # time enough for each child to import and compile
-    jobs = [(str(prep.data_dir), prep.team, prep.batches, seconds, start_at)] * processes
-    with multiprocessing.get_context("spawn").Pool(processes) as pool:
-        return float(sum(pool.map(_rate_in_child, jobs)))
+def _rate_in_child(job: tuple[str, list[list[dict[str, Any]]], float, float]) -> float:
+    """:func:`_recall_rate` in a pool child (its first call also compiles the collection)."""
+    team, batches, seconds, start_at = job
+    return _recall_rate(_CHILD, team, batches, seconds, start_at)
+
+
+class _Reference:
+    """The engine's in-process cues/s on the bench batches, in as many fresh processes at
+    once as the server runs workers, measured as often as asked (fresh, like the workers:
+    this process has built the collection and holds its objects).
+
+    Processes recalling side by side share the caches, the memory bus and the clock, which
+    one process's rate times the count does not show; and a shared machine drifts, so the
+    reference is measured next to each HTTP measurement it is compared with.
+    """
+
+    def __init__(self, prep: _Prepared, processes: int) -> None:
+        self.prep = prep
+        self.processes = processes
+        self.rates: list[float] = []
+        self._pool: Pool = multiprocessing.get_context("spawn").Pool(
+            processes, initializer=_child_init, initargs=(str(prep.data_dir),)
+        )
+
+    def measure(self, seconds: float) -> float:
+        # a common start, late enough for every child to be up and warmed
+        start_at = time.time() + (5.0 if not self.rates else 0.5)
+        job = (self.prep.team, self.prep.batches, seconds, start_at)
+        rate = float(sum(self._pool.map(_rate_in_child, [job] * self.processes)))
+        self.rates.append(rate)
+        return rate
+
+    def close(self) -> None:
+        self._pool.terminate()
+        self._pool.join()
 
 
 # ---------------------------------------------------------------------------------------------
@@ -454,6 +485,29 @@ class _Load:
     p99_ms: float
     non_2xx: int
     errors: int
+
+
+def combine_loads(loads: Sequence[_Load]) -> _Load:
+    """Rounds of one figure as one: counts and times added, the rate from the totals, the
+    median of the rounds' p50 and the worst of their p99.
+
+    >>> a = _Load(100, 1.0, 100.0, 2.0, 9.0, 0, 0)
+    >>> b = _Load(300, 1.0, 300.0, 4.0, 7.0, 1, 0)
+    >>> c = combine_loads([a, b])
+    >>> c.requests, c.requests_per_second, c.p50_ms, c.p99_ms, c.non_2xx
+    (400, 200.0, 3.0, 9.0, 1)
+    """
+    requests = sum(x.requests for x in loads)
+    seconds = sum(x.seconds for x in loads)
+    return _Load(
+        requests=requests,
+        seconds=seconds,
+        requests_per_second=requests / seconds if seconds > 0 else 0.0,
+        p50_ms=statistics.median(x.p50_ms for x in loads),
+        p99_ms=max(x.p99_ms for x in loads),
+        non_2xx=sum(x.non_2xx for x in loads),
+        errors=sum(x.errors for x in loads),
+    )
 
 
 class _Generator:
@@ -799,21 +853,34 @@ def _measure_server(
     in_process: float,
     cpus: int,
     rate_seconds: float,
+    rounds: int,
 ) -> None:
     running = min(workers, cpus)
-    side_by_side = _concurrent_rate(prep, rate_seconds, running)
+    reference = _Reference(prep, running)
     log = prep.data_dir / f"server-{workers}.log"
     t0 = time.perf_counter()
-    with _server(prep.data_dir, workers, log) as base:
-        started = time.perf_counter() - t0
-        targets = _targets(prep, base)
-        _check_answers(targets)
-        bursts = _warm_up(gen, targets, concurrency)
-        loads: dict[str, _Load] = {}
-        for name in ("healthz", "recall", "batch"):
-            _drain(base)
-            loads[name] = gen.run(targets[name], seconds, concurrency)
-        health, single, batch = loads["healthz"], loads["recall"], loads["batch"]
+    try:
+        reference.measure(rate_seconds)  # up and warm before the server takes the cores
+        with _server(prep.data_dir, workers, log) as base:
+            started = time.perf_counter() - t0
+            targets = _targets(prep, base)
+            _check_answers(targets)
+            bursts = _warm_up(gen, targets, concurrency)
+            runs: dict[str, list[_Load]] = {"healthz": [], "recall": [], "batch": []}
+            # The figures compared are measured in turns, A B A B, each round a share of the
+            # time, so a drift of the machine's speed falls on both sides of every ratio.
+            for _ in range(rounds):
+                for name in runs:
+                    _drain(base)
+                    runs[name].append(
+                        gen.run(targets[name], max(1, seconds // rounds), concurrency)
+                    )
+                    if name == "batch":
+                        reference.measure(rate_seconds)  # the idle server beside it
+            health, single, batch = (combine_loads(runs[name]) for name in runs)
+    finally:
+        reference.close()
+    side_by_side = sum(reference.rates) / len(reference.rates)
     top = health.requests_per_second
     ceiling = side_by_side
     sec.rows.append({**_row(workers, "GET /healthz", gen, health, concurrency), "ratio": 1.0})
@@ -832,11 +899,16 @@ def _measure_server(
             "cues_per_second": cues,
             "ratio": cues / ceiling,
             "ratio_to": (
-                f"in-process, {running} processes at once" if running > 1 else "in-process"
+                f"in-process, {running} processes at once"
+                if running > 1
+                else "in-process, 1 process"
             ),
         }
     )
     sec.summary[f"in_process_{running}p_cues_per_second"] = side_by_side
+    sec.summary[f"in_process_{running}p_measurements"] = ", ".join(
+        f"{r:,.0f}" for r in reference.rates
+    )
     if running > 1:
         # what the plain multiple would have claimed, for comparison
         sec.summary[f"in_process_{running}p_over_{running}x_one"] = round(
@@ -891,7 +963,16 @@ def measure(cfg: BenchConfig, sec: Section) -> Section:
         )
         for workers in counts:
             _measure_server(
-                sec, prep, gen, workers, seconds, concurrency, in_process, cpus, rate_seconds
+                sec,
+                prep,
+                gen,
+                workers,
+                seconds,
+                concurrency,
+                in_process,
+                cpus,
+                rate_seconds,
+                rounds=1 if cfg.quick else 2,
             )
         sec.summary["non_2xx_total"] = sum(int(r["non_2xx"]) for r in sec.rows)
     # Any failure here (a port, a missing binary, a server that will not start) must cost only

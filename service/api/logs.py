@@ -132,32 +132,30 @@ class RequestLogMiddleware:
         try:
             await self.app(scope, receive, send_with_id)
         finally:
+            elapsed = time.perf_counter() - started
+            route = _route_template(scope)
             metrics = getattr(getattr(scope.get("app"), "state", None), "metrics", None)
             if metrics is not None:
-                metrics.observe(
+                metrics.observe(scope["method"], route or "(no route)", status, elapsed)
+            if access_log.isEnabledFor(logging.INFO):  # the line's fields cost even unlogged
+                principal = state.get("principal")
+                client = scope.get("client")
+                access_log.info(
+                    "%s %s %d",
                     scope["method"],
-                    _route_template(scope) or "(no route)",
+                    route or "(no route)",
                     status,
-                    time.perf_counter() - started,
+                    extra={
+                        "request_id": request_id,
+                        "method": scope["method"],
+                        "route": route,
+                        "status": status,
+                        "duration_ms": round(elapsed * 1000.0, 3),
+                        "client": client[0] if client else None,
+                        "team": getattr(principal, "team", None),
+                        "key_prefix": getattr(principal, "key_prefix", None),
+                    },
                 )
-            principal = state.get("principal")
-            client = scope.get("client")
-            access_log.info(
-                "%s %s %d",
-                scope["method"],
-                _route_template(scope) or "(no route)",
-                status,
-                extra={
-                    "request_id": request_id,
-                    "method": scope["method"],
-                    "route": _route_template(scope),
-                    "status": status,
-                    "duration_ms": round((time.perf_counter() - started) * 1000.0, 3),
-                    "client": client[0] if client else None,
-                    "team": getattr(principal, "team", None),
-                    "key_prefix": getattr(principal, "key_prefix", None),
-                },
-            )
 
 
 def _header(scope: Scope, name: bytes) -> str | None:

@@ -73,10 +73,23 @@ class Metrics:
             registry=self.registry,
         )
         self.registry.register(_CacheCollector(app))
+        # Labelled children looked up once: labels() validates and locks on every call, a
+        # cost on the busiest paths. Route templates, statuses and verdicts are few.
+        self._children: dict[tuple[Any, ...], Any] = {}
+
+    def _child(self, metric: Any, *labels: str) -> Any:
+        key = (id(metric), *labels)
+        child = self._children.get(key)
+        if child is None:
+            child = self._children[key] = metric.labels(*labels)
+        return child
 
     def observe(self, method: str, route: str, status: int, seconds: float) -> None:
-        self.requests.labels(method, route, str(status)).inc()
-        self.latency.labels(method, route).observe(seconds)
+        self._child(self.requests, method, route, str(status)).inc()
+        self._child(self.latency, method, route).observe(seconds)
+
+    def count_verdict(self, verdict: str, reason: str, n: int) -> None:
+        self._child(self.verdicts, verdict, reason).inc(n)
 
 
 @router.get("/metrics", include_in_schema=False)

@@ -97,6 +97,9 @@ def test_a_document_parsed_once_is_what_the_strict_parser_reads(
 def test_the_careful_path_still_names_duplicates_and_depth() -> None:
     with pytest.raises(MalformedJson, match="appears twice"):
         check_json(b'{"cue": {"a": 1, "a": 2}}', 8)
+    # an escaped colon in the kept value must not make up for the dropped member
+    with pytest.raises(MalformedJson, match="appears twice"):
+        check_json(b'{"a": 1, "a": "\\u003a"}', 8)
     with pytest.raises(LimitExceeded, match="max_json_depth"):
         check_json(b"[[[[[1]]]]]", 4)
     assert check_json(b'{"n": 123456789012345678901234567890}', 8) is UNPARSED

@@ -70,9 +70,11 @@ def _json(document: Any) -> Response:
 
 def count_verdicts(metrics: Any, results: list[RecallResult]) -> None:
     """Add ``results`` to the verdict counters of the app's ``metrics``."""
-    verdicts = metrics.verdicts
+    if len(results) == 1:
+        metrics.count_verdict(results[0].verdict, results[0].reason, 1)
+        return
     for (verdict, reason), n in Counter((r.verdict, r.reason) for r in results).items():
-        verdicts.labels(verdict, reason).inc(n)
+        metrics.count_verdict(verdict, reason, n)
 
 
 @router.post(
