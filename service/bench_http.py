@@ -858,9 +858,9 @@ def _measure_server(
     running = min(workers, cpus)
     reference = _Reference(prep, running)
     log = prep.data_dir / f"server-{workers}.log"
-    t0 = time.perf_counter()
     try:
         reference.measure(rate_seconds)  # up and warm before the server takes the cores
+        t0 = time.perf_counter()
         with _server(prep.data_dir, workers, log) as base:
             started = time.perf_counter() - t0
             targets = _targets(prep, base)
