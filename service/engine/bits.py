@@ -21,7 +21,7 @@ array([[1., 1.]], dtype=float32)
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Final
 
 import numba
 import numpy as np
@@ -35,7 +35,7 @@ _M4 = np.uint64(0x0F0F0F0F0F0F0F0F)
 _H01 = np.uint64(0x0101010101010101)
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@numba.njit(nogil=True, inline="always")
 def _popcount(x: Any) -> Any:  # pragma: no cover - compiled
     # The branch-free bit count of common practice; LLVM turns it into the popcount instruction.
     x = x - ((x >> np.uint64(1)) & _M1)
@@ -44,12 +44,7 @@ def _popcount(x: Any) -> Any:  # pragma: no cover - compiled
     return (x * _H01) >> np.uint64(56)
 
 
-@numba.njit(
-    "void(uint64[:, ::1], uint64[:, ::1], float32[::1], uint64[:, ::1], float32[:, ::1])",
-    cache=True,
-    nogil=True,
-)
-def _count_dots(signs, known, n_known, stored, out):  # type: ignore[no-untyped-def]  # pragma: no cover - compiled
+def _count_dots_py(signs, known, n_known, stored, out):  # type: ignore[no-untyped-def]  # pragma: no cover - compiled
     # out[i, p] = n_known[i] - 2 * (known units of state i where it and pattern p disagree)
     n_states, n_words = signs.shape
     for i in range(n_states):
@@ -58,6 +53,25 @@ def _count_dots(signs, known, n_known, stored, out):  # type: ignore[no-untyped-
             for w in range(n_words):
                 c += _popcount((signs[i, w] ^ stored[p, w]) & known[i, w])
             out[i, p] = n_known[i] - np.float32(2.0) * np.float32(c)
+
+
+_SIGNATURE: Final = (
+    "void(uint64[:, ::1], uint64[:, ::1], float32[::1], uint64[:, ::1], float32[:, ::1])"
+)
+
+
+def compile_kernel(function: Any, njit: Any = numba.njit) -> Any:
+    """``function`` compiled for its one signature, the machine code cached on disk where
+    numba finds a writable place (beside this module, or ``NUMBA_CACHE_DIR``, or the user's
+    cache directory); where it finds none (a read-only install and home), compiled in memory
+    on every start instead of refusing to import."""
+    try:
+        return njit(_SIGNATURE, cache=True, nogil=True)(function)
+    except RuntimeError:  # numba: "cannot cache function ...: no locator available"
+        return njit(_SIGNATURE, cache=False, nogil=True)(function)
+
+
+_count_dots = compile_kernel(_count_dots_py)
 
 
 def pack(rows: NDArray[Any]) -> NDArray[np.uint8]:

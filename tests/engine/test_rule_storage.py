@@ -11,14 +11,16 @@ from __future__ import annotations
 
 import hashlib
 from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 import pytest
 from numpy.typing import NDArray
 
 from service.engine import DenseRule, HebbianRule, MemoryRule, ProjectionRule, StorkeyRule
+from service.engine import bits as bits_module
 from service.engine import rules as rules_module
-from service.engine.bits import unpack
+from service.engine.bits import compile_kernel, unpack
 
 PatternMaker = Callable[[int, int], NDArray[np.int8]]
 
@@ -321,3 +323,28 @@ class TestDenseChecksum:
         X = random_patterns(n_memories, n_units)
         rule = DenseRule(beta=12.0).fit(X)
         assert rule.checksum() == old_digest(X, np.array([12.0]))
+
+
+class TestKernelCompile:
+    def test_without_a_writable_cache_the_kernel_is_compiled_in_memory(self) -> None:
+        # numba refuses cache=True where it finds no writable directory (a read-only install
+        # and home, as under systemd's ProtectSystem=strict): the import must still work
+        calls: list[bool] = []
+
+        def njit(signature: str, *, cache: bool, nogil: bool) -> Callable[[Any], Any]:
+            calls.append(cache)
+            if cache:
+                raise RuntimeError("cannot cache function 'f': no locator available for file")
+            return lambda function: ("compiled", function, signature, nogil)
+
+        def kernel() -> None:
+            return None
+
+        compiled = compile_kernel(kernel, njit=njit)
+        assert calls == [True, False]
+        assert compiled[0] == "compiled"
+        assert compiled[1] is kernel
+        assert compiled[3] is True  # still releases the GIL
+
+    def test_the_kernel_module_is_compiled_for_its_one_signature(self) -> None:
+        assert len(bits_module._count_dots.signatures) == 1
