@@ -165,6 +165,9 @@ def create_app(settings: Settings, *, migrate: bool = False, direct_recall: bool
     tests compare the two paths; see :mod:`service.api.direct`).
     """
     app = FastAPI(
+        # Cuebank exports Prometheus metrics at /metrics and JSON access logs; the framework's
+        # own OpenTelemetry hooks looked up the global providers on every request.
+        telemetry={"tracing": False, "metrics": False, "logs": False, "operation_spans": False},
         title="Cuebank",
         version="0.1.0",
         description=DESCRIPTION,
