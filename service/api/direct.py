@@ -7,9 +7,9 @@ batch. This middleware sits inside the body limit and the authentication, so the
 already read, checked and parsed once (``service.api.bodies``) and the caller known, and
 answers ``POST /v1/collections/{name}/recall`` and ``.../recall:batch`` itself when everything
 is ordinary: a key with the read scope, a JSON body the route's own request model accepts, and
-a recall that succeeds. It uses the routes' own pieces (request models, option mapping, run
-queue, engine limiter, answer encoding), so its answers are the routes', byte for byte; the
-tests hold the two to each other.
+a recall that succeeds. It calls what the routes call (their request models, then
+``recall_one`` and ``recall_many``), so its answers are the routes', byte for byte; the tests
+hold the two to each other.
 
 Anything else, and every error, goes on to the framework's route with the body replayed, which
 answers it as documented (a refused cue is settled a second time there; errors are the rare
@@ -21,16 +21,13 @@ from __future__ import annotations
 import re
 from typing import Any
 
-import anyio.to_thread
-from pydantic import BaseModel, ValidationError
 from starlette.routing import BaseRoute
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.recall.auth import Principal
-from service.recall.models import RecallResult
 
 from .bodies import JSON_DOCUMENT
-from .routers.recall import answer_bytes, count_verdicts, recall, recall_batch, recall_options
+from .routers.recall import recall, recall_batch, recall_many, recall_one
 from .routers.recall import router as recall_router
 from .schemas import RecallBatchRequest, RecallRequest
 
@@ -87,9 +84,9 @@ class DirectRecallMiddleware:
             await self.app(scope, receive, send)
             return
         match = _PATH.fullmatch(scope["path"])
-        state = scope.get("state", {})
-        principal = state.get("principal")
-        document = state.get(JSON_DOCUMENT)
+        checked = scope.get("state", {})  # what the key check and the body limit left
+        principal = checked.get("principal")
+        document = checked.get(JSON_DOCUMENT)
         if (
             match is None
             or not isinstance(principal, Principal)
@@ -104,12 +101,16 @@ class DirectRecallMiddleware:
             await self.app(scope, _replay(message, receive), send)
             return
         name, batch = match.group(1), match.group(2) is not None
+        app_state, team = scope["app"].state, principal.team
+        answer: bytes | None
         try:
             if batch:
-                answer = await self._batch(scope, name, principal.team, document)
+                many = RecallBatchRequest.model_validate(document)
+                answer = await recall_many(app_state, team, name, many)
             else:
-                answer = await self._single(scope, name, principal.team, document)
-        except Exception:
+                single = RecallRequest.model_validate(document)
+                answer = await recall_one(app_state, team, name, single)
+        except Exception:  # a refusal of any kind: the route answers it as documented
             answer = None
         if answer is None:
             await self.app(scope, _replay(message, receive), send)
@@ -127,46 +128,6 @@ class DirectRecallMiddleware:
         )
         await send({"type": "http.response.body", "body": answer})
         self.answered += 1
-
-    async def _single(
-        self, scope: Scope, name: str, team: str, document: dict[str, Any]
-    ) -> bytes | None:
-        request = _valid(RecallRequest, document)
-        if not isinstance(request, RecallRequest):
-            return None
-        state = scope["app"].state
-        result = await state.recall_queue.submit(
-            (team, name, recall_options(request.options)), dict(request.cue)
-        )
-        count_verdicts(state.metrics, [result])
-        return answer_bytes(result)
-
-    async def _batch(
-        self, scope: Scope, name: str, team: str, document: dict[str, Any]
-    ) -> bytes | None:
-        request = _valid(RecallBatchRequest, document)
-        if not isinstance(request, RecallBatchRequest):
-            return None
-        state = scope["app"].state
-        service, heap = state.service, state.heap
-        cues = [dict(c) for c in request.cues]
-        options = recall_options(request.options)
-
-        def run() -> list[RecallResult]:
-            answers: list[RecallResult] = service.recall(team, name, cues, options)
-            heap.after_run()
-            return answers
-
-        results = await anyio.to_thread.run_sync(run, limiter=state.engine_limiter)
-        count_verdicts(state.metrics, results)
-        return answer_bytes({"results": results})
-
-
-def _valid(model: type[BaseModel], document: dict[str, Any]) -> BaseModel | None:
-    try:
-        return model.model_validate(document)
-    except (ValidationError, TypeError, ValueError):
-        return None
 
 
 def _replay(first: Message, receive: Receive) -> Receive:

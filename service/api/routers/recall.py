@@ -10,7 +10,7 @@ import orjson
 from fastapi import APIRouter, Body, Request, Response
 
 from service.api.batching import RecallQueue
-from service.api.deps import CurrentTeam, RequireScope, ServiceDep
+from service.api.deps import CurrentTeam, RequireScope
 from service.api.examples import openapi_examples, response_examples
 from service.api.heap import HeapFreezer
 from service.api.schemas import (
@@ -21,6 +21,7 @@ from service.api.schemas import (
     RecallRequest,
 )
 from service.recall.models import RecallOptions, RecallResult
+from service.recall.service import RecallService
 
 from . import BODY_PROBLEMS, problem_responses
 from .collections import CollectionPath
@@ -64,17 +65,41 @@ def answer_bytes(document: Any) -> bytes:
     return orjson.dumps(document, option=orjson.OPT_SERIALIZE_NUMPY)
 
 
-def _json(document: Any) -> Response:
-    return Response(answer_bytes(document), media_type="application/json")
-
-
 def count_verdicts(metrics: Any, results: list[RecallResult]) -> None:
     """Add ``results`` to the verdict counters of the app's ``metrics``."""
-    if len(results) == 1:
-        metrics.count_verdict(results[0].verdict, results[0].reason, 1)
-        return
     for (verdict, reason), n in Counter((r.verdict, r.reason) for r in results).items():
         metrics.count_verdict(verdict, reason, n)
+
+
+async def recall_one(state: Any, team: str, name: str, body: RecallRequest) -> bytes:
+    """The answer body of one single-cue recall, through the app's run queue; a refusal
+    raises. Shared by the route and the short path of :mod:`service.api.direct`."""
+    queue: RecallQueue[RecallKey, RecallResult] = state.recall_queue
+    result = await queue.submit((team, name, recall_options(body.options)), dict(body.cue))
+    count_verdicts(state.metrics, [result])
+    return answer_bytes(result)
+
+
+async def recall_many(state: Any, team: str, name: str, body: RecallBatchRequest) -> bytes:
+    """The answer body of one batch recall, on the app's engine threads; a refusal raises.
+    Shared by the route and the short path of :mod:`service.api.direct`."""
+    service: RecallService = state.service
+    heap: HeapFreezer = state.heap
+    cues = [dict(c) for c in body.cues]
+    options = recall_options(body.options)
+
+    def run() -> list[RecallResult]:
+        answers = service.recall(team, name, cues, options)
+        heap.after_run()
+        return answers
+
+    results = await anyio.to_thread.run_sync(run, limiter=state.engine_limiter)
+    count_verdicts(state.metrics, results)
+    return answer_bytes({"results": results})
+
+
+def _json(body: bytes) -> Response:
+    return Response(body, media_type="application/json")
 
 
 @router.post(
@@ -94,10 +119,7 @@ async def recall(
     Concurrent recalls on the same collection with the same options are settled together in
     one matrix product; each is answered as if it came alone.
     """
-    queue: RecallQueue[RecallKey, RecallResult] = request.app.state.recall_queue
-    result = await queue.submit((team, name, recall_options(body.options)), dict(body.cue))
-    count_verdicts(request.app.state.metrics, [result])
-    return _json(result)
+    return _json(await recall_one(request.app.state, team, name, body))
 
 
 @router.post(
@@ -115,19 +137,7 @@ async def recall_batch(
     body: Annotated[
         RecallBatchRequest, Body(openapi_examples=openapi_examples("RecallBatchRequest"))
     ],
-    service: ServiceDep,
     team: CurrentTeam,
 ) -> Response:
     """Recall several cues at once; results come in the order of the cues."""
-    cues = [dict(c) for c in body.cues]
-    heap: HeapFreezer = request.app.state.heap
-    options = recall_options(body.options)
-
-    def run() -> list[RecallResult]:
-        answers = service.recall(team, name, cues, options)
-        heap.after_run()
-        return answers
-
-    results = await anyio.to_thread.run_sync(run, limiter=request.app.state.engine_limiter)
-    count_verdicts(request.app.state.metrics, results)
-    return _json({"results": results})
+    return _json(await recall_many(request.app.state, team, name, body))
