@@ -220,11 +220,12 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
     tests hold the two to each other.
     """
     n_cues, n_units = cues.shape
+    state = cues.astype(np.float32)
+    cue_products = rule._dots(state)  # counted once, for the lone-cue path and the loop alike
     if n_cues == 1:
-        alone = _settle_one(rule, cues, limit)
+        alone = _settle_one(rule, cues, limit, cue_products[0])
         if alone is not None:
             return alone
-    state = cues.astype(np.float32)
     # Σ s² counts the known units exactly (ones, in float32), a third of count_nonzero's time
     n_known = np.einsum("ij,ij->i", state, state).astype(np.int64)
     prev = np.empty_like(state)  # state one step back; read only where written
@@ -236,7 +237,7 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
     cue_dots: NDArray[np.float32] | None = None
     state_dots = np.empty((n_cues, rule.n_memories_), dtype=np.float32) if keep else None
     state_known = np.zeros(n_cues, dtype=bool)
-    first = rule._winners(state, n_known)
+    first = rule._rank(cue_products, rule._betas(state, n_known))
     done_at_once = _settled_at_once(rule, cues, limit, first, keep)
     if done_at_once is not None:
         return done_at_once
@@ -343,9 +344,12 @@ def _settled_at_once(
     )
 
 
-def _settle_one(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> SettleResult | None:
+def _settle_one(
+    rule: DenseRule, cues: NDArray[np.int8], limit: int, dots: NDArray[np.float32]
+) -> SettleResult | None:
     """A lone cue whose first readout is one-hot and settles in that step (or provably in
-    the next), in a handful of scalar steps; None where the general loop must decide.
+    the next), in a handful of scalar steps from its dot products ``dots`` with every
+    memory; None where the general loop must decide (it reuses the same ``dots``).
 
     The same tests and the same numbers as :func:`_settle_dense`'s first step (the gap as
     ``DenseRule._one_hot_gap`` computes it), for one cue: there the array calls around
@@ -353,7 +357,6 @@ def _settle_one(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> SettleRe
     """
     s = cues[0]
     n_units = s.shape[0]
-    dots = rule._dots(cues)[0]  # exact integers
     n_mem = dots.shape[0]
     best = int(dots.argmax())
     top = float(dots[best])

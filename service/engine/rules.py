@@ -903,8 +903,13 @@ class DenseRule(MemoryRule):
         """Dot products X s, each state's best memory, runner-up and best dot products,
         whether its readout is one-hot (see :meth:`_one_hot_gap`), and its β'."""
         self._require_fitted()
-        betas = self._betas(states, n_known)
-        dots = self._dots(states)
+        return self._rank(self._dots(states), self._betas(states, n_known))
+
+    def _rank(
+        self, dots: F32, betas: NDArray[np.float32]
+    ) -> tuple[F32, NDArray[np.intp], F64, F64, NDArray[np.bool_], NDArray[np.float32]]:
+        """:meth:`_winners` from dot products already counted (``dots`` is handed back, its
+        values as they were)."""
         n_states, n_mem = dots.shape
         rows = np.arange(n_states)
         best = np.asarray(dots.argmax(axis=1))
