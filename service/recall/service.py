@@ -36,15 +36,15 @@ from service.engine import (
 )
 from service.engine.codec import Codec, Schema
 from service.settings import Settings
-from service.storage.db import SessionFactory, read_connection, unit_of_work
+from service.storage.db import SessionFactory, unit_of_work
 from service.storage.errors import DuplicateNameError
 from service.storage.models import Collection
 from service.storage.repositories import (
     CollectionRepository,
     CompileReportRepository,
     MemoryRepository,
+    RevisionReader,
     TeamRepository,
-    collection_revision,
 )
 
 from .compiled import CompiledCache, CompiledMemory, FieldCandidates
@@ -147,6 +147,7 @@ class RecallService:
         self.settings = settings
         self.sessions = sessions
         self.cache = CompiledCache(settings.cache_bytes)
+        self._revisions = RevisionReader(sessions.kw["bind"])
 
     # ------------------------------------------------------------------ helpers
 
@@ -803,8 +804,7 @@ class RecallService:
         recall; the ORM path (and a compile) runs only when the cache is behind or the
         collection is missing.
         """
-        with read_connection(self.sessions) as connection:
-            current = collection_revision(connection, team, name)
+        current = self._revisions.read(team, name)
         cached = self.cache.get(current.id) if current is not None else None
         if current is not None and cached is not None and cached.revision == current.revision:
             compiled, verdict_options = cached, current.verdict_options

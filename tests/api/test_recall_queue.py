@@ -54,9 +54,7 @@ async def test_cues_arriving_within_the_gathering_turns_share_the_first_run(turn
 async def test_gathering_stops_once_a_run_is_full() -> None:
     run = Recorder()
     queue = RecallQueue(run, max_batch=2, gather_turns=1000)
-    answers = await asyncio.wait_for(
-        asyncio.gather(*(queue.submit("k", i) for i in range(5))), 5.0
-    )
+    answers = await asyncio.wait_for(asyncio.gather(*(queue.submit("k", i) for i in range(5))), 5.0)
     assert answers == [("k", 2 * i) for i in range(5)]
     assert run.batches == [[0, 1], [2, 3], [4]]
 

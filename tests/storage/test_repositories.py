@@ -8,9 +8,16 @@ from datetime import UTC
 from typing import Any
 
 import pytest
+from sqlalchemy import Engine, create_engine
 from sqlalchemy.orm import Session
 
-from service.storage.db import SessionFactory, read_connection, unit_of_work
+from service.storage.db import (
+    SessionFactory,
+    make_engine,
+    make_session_factory,
+    read_connection,
+    unit_of_work,
+)
 from service.storage.errors import DuplicateNameError, NotFoundError
 from service.storage.models import Collection, Team
 from service.storage.repositories import (
@@ -19,6 +26,7 @@ from service.storage.repositories import (
     CollectionRepository,
     CompileReportRepository,
     MemoryRepository,
+    RevisionReader,
     TeamRepository,
     collection_revision,
 )
@@ -210,6 +218,125 @@ class TestCollectionRevision:
             assert collection_revision(connection, DEFAULT_TEAM_NAME, "elsewhere") is None
             assert collection_revision(connection, "harbour-lab", "specimens") is None
             assert collection_revision(connection, "nobody", "specimens") is None
+
+
+class TestRevisionReader:
+    """The recall path's revision check on a connection each thread keeps (one statement)."""
+
+    @staticmethod
+    def _seed(session_factory: SessionFactory) -> int:
+        with unit_of_work(session_factory, write=True) as session:
+            default = TeamRepository(session).get_or_create_default()
+            other = TeamRepository(session).create("harbour-lab")
+            mine = make_collection(session, default)
+            make_collection(session, other, name="elsewhere")
+            return mine.id
+
+    @staticmethod
+    def _bump(session_factory: SessionFactory, collection_id: int) -> None:
+        with unit_of_work(session_factory, write=True) as session:
+            CollectionRepository(session).bump_revision(collection_id)
+
+    def test_reads_what_the_pooled_query_reads(
+        self, engine: Engine, session_factory: SessionFactory
+    ) -> None:
+        mine_id = self._seed(session_factory)
+        reader = RevisionReader(engine)
+        found = reader.read(DEFAULT_TEAM_NAME, "specimens")
+        assert found == (mine_id, 0, {"min_overlap": 0.5})
+        with read_connection(session_factory) as connection:
+            assert found == collection_revision(connection, DEFAULT_TEAM_NAME, "specimens")
+        assert reader.read(DEFAULT_TEAM_NAME, "elsewhere") is None
+        assert reader.read("harbour-lab", "specimens") is None
+        assert reader.read("nobody", "specimens") is None
+        assert reader.opened == 1  # one connection, kept
+
+    def test_a_commit_by_another_engine_is_seen_by_the_very_next_read(
+        self, engine: Engine, session_factory: SessionFactory
+    ) -> None:
+        # another worker process writes through an engine of its own; the held connection is
+        # in autocommit, so no snapshot of an older read hides the write
+        mine_id = self._seed(session_factory)
+        reader = RevisionReader(engine)
+        assert reader.read(DEFAULT_TEAM_NAME, "specimens") == (mine_id, 0, {"min_overlap": 0.5})
+        other = make_engine(engine.url.render_as_string(hide_password=False))
+        try:
+            for expected in (1, 2, 3):
+                self._bump(make_session_factory(other), mine_id)
+                found = reader.read(DEFAULT_TEAM_NAME, "specimens")
+                assert found is not None
+                assert found.revision == expected
+        finally:
+            other.dispose()
+        assert reader.opened == 1
+
+    def test_each_thread_keeps_its_own_connection(
+        self, engine: Engine, session_factory: SessionFactory
+    ) -> None:
+        mine_id = self._seed(session_factory)
+        reader = RevisionReader(engine)
+        seen: list[Any] = []
+
+        def read() -> None:
+            seen.append(reader.read(DEFAULT_TEAM_NAME, "specimens"))
+
+        threads = [threading.Thread(target=read) for _ in range(3)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join()
+        assert [s.id for s in seen] == [mine_id] * 3
+        assert reader.opened == 3
+        read()  # this thread opens one more; the ended threads' connections are closed
+        assert reader.opened == 4
+        assert len(reader._held) == 1
+
+    def test_a_broken_connection_is_replaced_and_the_read_still_answers(
+        self, engine: Engine, session_factory: SessionFactory
+    ) -> None:
+        mine_id = self._seed(session_factory)
+        reader = RevisionReader(engine)
+        assert reader.read(DEFAULT_TEAM_NAME, "specimens") is not None
+        reader._local.connection.close()  # as a restarted database server would leave it
+        found = reader.read(DEFAULT_TEAM_NAME, "specimens")
+        assert found is not None
+        assert found.id == mine_id
+        found = reader.read(DEFAULT_TEAM_NAME, "specimens")
+        assert found is not None
+        assert found.id == mine_id
+        assert reader.opened == 2  # and a new connection kept after it
+
+    def test_disposing_the_engine_closes_the_kept_connections(
+        self, engine: Engine, session_factory: SessionFactory
+    ) -> None:
+        mine_id = self._seed(session_factory)
+        reader = RevisionReader(engine)
+        reader.read(DEFAULT_TEAM_NAME, "specimens")
+        kept = reader._local.connection
+        engine.dispose()
+        assert reader._held == {}
+        with pytest.raises(Exception, match="closed"):
+            kept.cursor().execute("SELECT 1")
+        found = reader.read(DEFAULT_TEAM_NAME, "specimens")  # and reading goes on
+        assert found is not None
+        assert found.id == mine_id
+
+
+def test_an_in_memory_sqlite_database_is_read_through_its_one_pooled_connection() -> None:
+    from service.storage.models import Base
+
+    engine = create_engine("sqlite://")
+    try:
+        Base.metadata.create_all(engine)
+        factory = make_session_factory(engine)
+        mine_id = TestRevisionReader._seed(factory)
+        reader = RevisionReader(engine)
+        found = reader.read(DEFAULT_TEAM_NAME, "specimens")
+        assert found is not None
+        assert found.id == mine_id
+        assert reader.opened == 0
+    finally:
+        engine.dispose()
 
 
 class TestMemoryRepository:
