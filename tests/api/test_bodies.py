@@ -9,7 +9,14 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.api.bodies import UNPARSED, check_json, json_depth_over, strict_json_loads
+from service.api.bodies import (
+    _JSON_STRING,
+    UNPARSED,
+    _outside_strings,
+    check_json,
+    json_depth_over,
+    strict_json_loads,
+)
 from service.api.errors import MalformedJson
 from service.recall.errors import LimitExceeded
 
@@ -39,6 +46,17 @@ def test_depth_scan_agrees_with_the_parsed_value(
 ) -> None:
     body = json.dumps(value, ensure_ascii=ascii_only).encode("utf-8")
     assert json_depth_over(body, maximum) == (_depth(json.loads(body)) > maximum)
+
+
+@settings(max_examples=300, deadline=None)
+@given(VALUES, st.booleans())
+def test_cutting_strings_by_quotes_agrees_with_the_string_pattern(
+    value: Any, ascii_only: bool
+) -> None:
+    # the split on quotes (no backslash in the body) against the JSON string pattern, on
+    # bodies with and without escapes
+    body = json.dumps(value, ensure_ascii=ascii_only).encode("utf-8")
+    assert _outside_strings(body) == _JSON_STRING.sub(b"", body)
 
 
 # Documents with the numbers a second parser could read otherwise: big and negative integers,
