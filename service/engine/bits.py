@@ -27,7 +27,7 @@ import numba
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["pack", "packed_dots", "unpack", "unpack_f32", "words"]
+__all__ = ["pack", "packed_dots", "row_dots", "unpack", "unpack_f32", "words"]
 
 _M1 = np.uint64(0x5555555555555555)
 _M2 = np.uint64(0x3333333333333333)
@@ -122,5 +122,20 @@ def packed_dots(states: NDArray[Any], bits: NDArray[np.uint8], n_units: int) -> 
         signs = words(np.packbits(states > 0, axis=1))
         known = words(np.packbits(states != 0, axis=1))
         n_known = np.count_nonzero(states, axis=1).astype(np.float32)
+        _count_dots(signs, known, n_known, stored, out)
+    return out
+
+
+def row_dots(bits: NDArray[np.uint8], rows: NDArray[np.intp], n_units: int) -> NDArray[np.float32]:
+    """x_r · x for the packed rows ``rows`` against every packed row x, shape (len(rows),
+    n_rows): :func:`packed_dots` of those rows unpacked, without unpacking and packing them
+    again (every unit is known, so the mask is the first ``n_units`` bits of each row).
+    """
+    stored = words(bits)
+    out = np.empty((len(rows), stored.shape[0]), dtype=np.float32)
+    if out.size:
+        signs = np.ascontiguousarray(stored[rows])
+        known = np.repeat(words(pack(np.ones((1, n_units), dtype=np.int8))), len(rows), axis=0)
+        n_known = np.full(len(rows), n_units, dtype=np.float32)
         _count_dots(signs, known, n_known, stored, out)
     return out

@@ -38,6 +38,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ._checks import as_cues, check_choice, check_int
+from .bits import row_dots
 from .errors import ParameterError
 from .rules import DenseRule, MemoryRule, check_fitted_rule
 
@@ -309,38 +310,58 @@ def _settled_at_once(
     first: tuple[Any, ...],
     keep: bool,
 ) -> SettleResult | None:
-    """The result when every cue's first readout is one-hot and each is either its memory
-    already or provably settles on it in the next step (the common case); else None.
+    """The result when every cue's first sign update is its best memory's pattern x_w and
+    each cue either is x_w already or settles there in the next step (the common case);
+    else None, and the loop decides.
 
-    What :func:`_settle_dense` would find, without building the winners' patterns as
-    float32 fields first: a cue that is its memory stays as it is, the others become their
-    memory's pattern, gathered once as int8.
+    What :func:`_settle_dense` would find, without its loop. The first update is x_w where
+    the readout is one-hot or x_w holds more than half the softmax weight (the tests of
+    ``DenseRule._fields``, on the same numbers). A cue that is x_w stays; the others become
+    x_w, whose next readout is decided on the dot products x_w·x counted straight from the
+    packed patterns (the loop's second step counts the same integers from the state): it is
+    settled where its own update, by the same two tests, is x_w again, and those products
+    go on to the verdict. Where products are not kept, only one-hot cues the
+    bound of :func:`_stays_on_winner` confirms are settled here, as the loop confirms them.
     """
     dots, best, runner, top, one_hot, betas = first
-    if not one_hot.all():
+    slow = np.flatnonzero(~one_hot)
+    if slow.size and not (
+        keep and rule._dominant(rule._weights(dots, betas, slow), best[slow]).all()
+    ):
         return None
     n_cues, n_units = cues.shape
     fixed = top == n_units
-    if limit > 1:
-        gap = rule._one_hot_gap(betas)
-        moved = ~fixed & _stays_on_winner(runner, top, n_units, gap)
-    else:
-        moved = np.zeros(n_cues, dtype=bool)
-    if not (fixed | moved).all():
+    rows = np.flatnonzero(~fixed)
+    state_dots = dots
+    if rows.size and limit == 1:
         return None
+    if rows.size and keep:
+        after = row_dots(rule._bits, best[rows], n_units)
+        full = np.full(rows.size, n_units, dtype=np.int64)
+        _, best2, _, top2, one_hot2, betas2 = rule._rank(after, rule._betas(after, full))
+        slow2 = np.flatnonzero(~one_hot2)
+        if slow2.size:
+            one_hot2[slow2] = rule._dominant(rule._weights(after, betas2, slow2), best2[slow2])
+        if not (one_hot2 & (top2 == n_units)).all():  # x_w's own update is x_w again
+            return None
+        state_dots = dots.copy()
+        state_dots[rows] = after
+    elif rows.size:
+        gap = rule._one_hot_gap(betas[rows])
+        if not _stays_on_winner(runner[rows], top[rows], n_units, gap).all():
+            return None
     states = cues.copy()
-    rows = np.flatnonzero(moved)
     if rows.size:
         states[rows] = rule._x[best[rows]]  # ±1.0 → ±1 exactly
     return SettleResult(
         states=states,
-        steps=np.where(moved, 2, 1).astype(np.int64),  # the proven confirming step counts
+        steps=np.where(fixed, 1, 2).astype(np.int64),  # the confirming step counts
         converged=np.ones(n_cues, dtype=bool),
         cycle_length=np.zeros(n_cues, dtype=np.int64),
         cues=cues if keep else None,
         cue_dots=dots if keep else None,
-        state_dots=dots if keep else None,
-        state_dots_known=fixed if keep else None,
+        state_dots=state_dots if keep else None,
+        state_dots_known=np.ones(n_cues, dtype=bool) if keep else None,
     )
 
 

@@ -954,20 +954,31 @@ class DenseRule(MemoryRule):
         fields = np.empty((n_states, self._x.shape[1]), dtype=np.float32)
         fields[one_hot] = self._x[best[one_hot]]
         if slow.size:
-            z = dots[slow]  # a copy: the dot products are returned as they are
-            z *= betas[slow][:, None]
-            z -= z.max(axis=1, keepdims=True)
-            np.exp(z, out=z)
-            z /= z.sum(axis=1, keepdims=True)
+            z = self._weights(dots, betas, slow)
             if signs_only:
-                # the best memory's weight sits where the max was subtracted: exp(0) / sum
-                dominant = z[np.arange(slow.size), best[slow]] > np.float32(0.5 + 1e-3)
+                dominant = self._dominant(z, best[slow])
                 fields[slow[dominant]] = self._x[best[slow[dominant]]]
                 z, slow = z[~dominant], slow[~dominant]
             if slow.size:
                 fields[slow] = self._readout(z)
         winner = np.where(one_hot, best, -1)
         return fields, winner, runner, top, dots
+
+    def _weights(self, dots: F32, betas: NDArray[np.float32], rows: NDArray[np.intp]) -> F32:
+        """Softmax weights over the memories of the states ``rows`` (a copy of their dot
+        products: ``dots`` stays as it is)."""
+        z = dots[rows]
+        z *= betas[rows][:, None]
+        z -= z.max(axis=1, keepdims=True)
+        np.exp(z, out=z)
+        z /= z.sum(axis=1, keepdims=True)
+        return z
+
+    def _dominant(self, weights: F32, best: NDArray[np.intp]) -> NDArray[np.bool_]:
+        """States whose best memory holds more than half the softmax weight (see
+        :meth:`_fields`): their sign update is that memory's pattern."""
+        # the best memory's weight sits where the max was subtracted: exp(0) / sum
+        return np.asarray(weights[np.arange(best.size), best] > np.float32(0.5 + 1e-3))
 
     def _readout(self, a: F32) -> F32:
         """``a @ X`` over the weights above ``readout_tolerance / P``.

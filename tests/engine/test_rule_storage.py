@@ -180,6 +180,19 @@ class TestPatternDots:
         assert got.dtype == np.float32
         np.testing.assert_array_equal(got, expected)
 
+    @pytest.mark.parametrize("n_units", [7, 64, 130])
+    @pytest.mark.parametrize("rows", [[0], [2, 2], [1, 0, 3, 4]])
+    def test_products_of_stored_rows_are_numpys_integer_product(
+        self, random_patterns: PatternMaker, n_units: int, rows: list[int]
+    ) -> None:
+        # the stored rows against every stored row, straight from their bits (one row too)
+        X = random_patterns(9, n_units)
+        picked = np.array(rows, dtype=np.intp)
+        expected = X[picked].astype(np.int64) @ X.astype(np.int64).T
+        got = bits_module.row_dots(bits_module.pack(X), picked, n_units)
+        assert got.dtype == np.float32
+        np.testing.assert_array_equal(got, expected)
+
 
 class TestHebbianUpdate:
     @pytest.mark.parametrize("n_units", [5, 300, 1500])
