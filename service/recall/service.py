@@ -140,6 +140,12 @@ def _json_value(value: Any) -> FieldValue:
     return value  # type: ignore[no-any-return]
 
 
+def _rounded(values: np.ndarray, digits: int) -> list[float]:
+    """``values`` as Python floats rounded to ``digits`` decimals (Python's correctly
+    rounded ``round``, not numpy's scaled one)."""
+    return [round(x, digits) for x in values.tolist()]
+
+
 class RecallService:
     """The use-cases of one running service (one per worker process)."""
 
@@ -909,30 +915,51 @@ class RecallService:
             blocks=list(codec.schema.slices.values()),
         )
         decoded = self._decode(compiled, result.states, verdicts.best)
+        # Columns as Python lists once, not numpy scalars cue by cue: same values, a third of
+        # the time for a batch
+        keys, fields = compiled.keys, compiled.fields
+        best: list[int] = verdicts.best.tolist()
+        overlap, margin, cue_overlap, cue_margin, cue_agreement, field_agreement = (
+            _rounded(a, 6)
+            for a in (
+                verdicts.overlap,
+                verdicts.margin,
+                verdicts.cue_overlap,
+                verdicts.cue_margin,
+                verdicts.cue_agreement,
+                verdicts.field_agreement,
+            )
+        )
+        nearest: list[list[int]] = verdicts.nearest.tolist()
+        nearest_overlap: list[list[float]] = verdicts.nearest_overlap.tolist()
+        taken: list[int] = verdicts.steps.tolist()
+        converged: list[bool] = verdicts.converged.tolist()
+        cycle_length: list[int] = verdicts.cycle_length.tolist()
         out: list[RecallResult] = []
-        for i in range(cue_matrix.shape[0]):
-            v = verdicts[i]
-            best_key = compiled.keys[v.best]
-            memory = None
-            if v.verdict == "recalled":
-                memory = RecalledMemory(best_key, dict(compiled.fields[v.best]))
+        for i, verdict in enumerate(verdicts.verdict):
+            b = best[i]
             out.append(
                 RecallResult(
-                    verdict=v.verdict,  # type: ignore[arg-type]
-                    reason=v.reason,
-                    memory=memory,
-                    best_key=best_key,
-                    overlap=round(v.overlap, 6),
-                    margin=round(v.margin, 6),
-                    cue_overlap=round(v.cue_overlap, 6),
-                    cue_margin=round(v.cue_margin, 6),
-                    cue_agreement=round(v.cue_agreement, 6),
-                    field_agreement=round(v.field_agreement, 6),
+                    verdict=verdict,  # type: ignore[arg-type]
+                    reason=verdicts.reason[i],
+                    memory=(
+                        RecalledMemory(keys[b], dict(fields[b])) if verdict == "recalled" else None
+                    ),
+                    best_key=keys[b],
+                    overlap=overlap[i],
+                    margin=margin[i],
+                    cue_overlap=cue_overlap[i],
+                    cue_margin=cue_margin[i],
+                    cue_agreement=cue_agreement[i],
+                    field_agreement=field_agreement[i],
                     fields=decoded[i],
-                    nearest=[Neighbour(compiled.keys[j], round(m, 6)) for j, m in v.nearest],
-                    steps=v.steps,
-                    converged=v.converged,
-                    cycle_length=v.cycle_length,
+                    nearest=[
+                        Neighbour(keys[j], round(m, 6))
+                        for j, m in zip(nearest[i], nearest_overlap[i], strict=True)
+                    ],
+                    steps=taken[i],
+                    converged=converged[i],
+                    cycle_length=cycle_length[i],
                     revision=compiled.revision,
                     energy=(
                         [float(e) for e in result.energies[i]]
