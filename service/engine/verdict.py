@@ -47,6 +47,7 @@ patterns.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -90,6 +91,12 @@ def chance_ceiling(n_memories: int, n_units: int) -> float:
     n = max(int(n_units), 1)
     p = max(int(n_memories), 1)
     return math.sqrt(2.0 * math.log(2.0 * p) / n) + 3.0 / math.sqrt(n)
+
+
+@functools.lru_cache(maxsize=4096)
+def _chance_ceiling(n_memories: int, n_units: float) -> float:
+    # cues of a collection know a few distinct numbers of units: worth remembering
+    return chance_ceiling(n_memories, int(n_units))
 
 
 @dataclass(frozen=True)
@@ -330,7 +337,7 @@ def judge(
 
     theta_m = th.resolved_recall_overlap(n_units)
     ceiling_state = chance_ceiling(n_mem, n_units)
-    ceiling_cue = np.array([chance_ceiling(n_mem, int(n)) for n in n_known])
+    ceiling_cue = np.array([_chance_ceiling(n_mem, n) for n in n_known.tolist()])
     theta_a = (
         np.full(c.shape[0], th.min_agreement)
         if th.min_agreement is not None
@@ -346,20 +353,34 @@ def judge(
 
     verdict: list[str] = []
     reason: list[str] = []
-    for i in range(c.shape[0]):
-        if not result.converged[i]:
+    # the same comparisons on Python numbers (columns converted once, not scalar by scalar)
+    for conv, cyc, lo, hi, present, agr, fagr, ta, cb, cs, tc in zip(
+        np.asarray(result.converged).tolist(),
+        np.asarray(result.cycle_length).tolist(),
+        m_min.tolist(),
+        m_best.tolist(),
+        n_present.tolist(),
+        agreement.tolist(),
+        np.asarray(field_agr, dtype=np.float64).tolist(),
+        np.asarray(theta_a, dtype=np.float64).tolist(),
+        c_best.tolist(),
+        c_second.tolist(),
+        np.asarray(theta_c, dtype=np.float64).tolist(),
+        strict=True,
+    ):
+        if not conv:
             verdict.append("unsettled")
-            reason.append("cycle" if result.cycle_length[i] > 0 else "step_limit")
-        elif m_min[i] <= -theta_m and -m_min[i] > m_best[i]:
+            reason.append("cycle" if cyc > 0 else "step_limit")
+        elif lo <= -theta_m and -lo > hi:
             verdict.append("spurious")
             reason.append("reversed")
-        elif m_best[i] < theta_m:
+        elif hi < theta_m:
             verdict.append("spurious")
-            reason.append("mixture" if n_present[i] >= 2 else "far")
-        elif agreement[i] < theta_a[i] or field_agr[i] < theta_f:
+            reason.append("mixture" if present >= 2 else "far")
+        elif agr < ta or fagr < theta_f:
             verdict.append("spurious")
             reason.append("far")
-        elif c_best[i] - c_second[i] < theta_c[i]:
+        elif cb - cs < tc:
             verdict.append("spurious")
             reason.append("ambiguous")
         else:

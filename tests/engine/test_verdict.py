@@ -4,9 +4,12 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from itertools import pairwise
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from numpy.typing import NDArray
 
 from service.engine import (
@@ -17,6 +20,7 @@ from service.engine import (
     judge,
     settle,
 )
+from service.engine.verdict import field_agreement
 
 PatternMaker = Callable[[int, int], NDArray[np.int8]]
 RuleWithWeights = Callable[..., HebbianRule]
@@ -179,3 +183,32 @@ class TestJudgeGivenTheRule:
         res = settle(fitted, np.ones((1, 8), dtype=np.int8))
         with pytest.raises(EngineError):
             judge(DenseRule(), np.ones((1, 8), dtype=np.int8), res)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    n_rows=st.integers(1, 9),
+    cuts=st.lists(st.integers(1, 40), min_size=1, max_size=5),
+)
+def test_field_agreement_is_the_least_agreement_over_each_known_block(
+    seed: int, n_rows: int, cuts: list[int]
+) -> None:
+    # Reference: the definition, block by block in plain Python
+    rng = np.random.default_rng(seed)
+    bounds = np.cumsum([0, *cuts])
+    blocks = [slice(int(a), int(b)) for a, b in pairwise(bounds)]
+    rng.shuffle(blocks)
+    n = int(bounds[-1])
+    states = rng.choice(np.array([-1.0, 1.0], dtype=np.float32), size=(n_rows, n))
+    cues = rng.choice(np.array([-1.0, 0.0, 1.0], dtype=np.float32), size=(n_rows, n))
+    cues[rng.random(n_rows) < 0.3] = 0.0  # some cues know nothing at all
+    got = field_agreement(states, cues, blocks)
+    for i in range(n_rows):
+        per_block = [
+            sum(float(s) * float(c) for s, c in zip(states[i, b], cues[i, b], strict=True))
+            / np.count_nonzero(cues[i, b])
+            for b in blocks
+            if np.count_nonzero(cues[i, b])
+        ]
+        assert got[i] == (min(per_block) if per_block else 1.0)
