@@ -40,7 +40,7 @@ from .logs import RequestLogMiddleware
 from .metrics import Metrics
 from .metrics import router as metrics_router
 from .routers import collections, health, keys, memories, problems, recall, reconciliations
-from .routers.recall import RecallKey
+from .routers.recall import RecallKey, answer_bytes, count_verdicts
 from .security import AuthMiddleware, FailureLimiter, TokenBuckets, document_security
 
 __all__ = ["DatabaseNotReady", "create_app"]
@@ -110,12 +110,15 @@ def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
             app.state.engine_limiter = limiter = anyio.CapacityLimiter(settings.engine_threads)
             app.state.heap = heap = HeapFreezer(lambda: service.cache.generation)
 
-            def run(key: RecallKey, cues: Sequence[Any]) -> list[RecallResult | ServiceError]:
+            def run(key: RecallKey, cues: Sequence[Any]) -> list[bytes | ServiceError]:
+                # answers written here, beside the results: the event loop has requests to read
                 answers = service.recall_each(key[0], key[1], cues, key[2])
                 heap.after_run()
-                return answers
+                results = [a for a in answers if isinstance(a, RecallResult)]
+                count_verdicts(app.state.metrics, results)
+                return [a if isinstance(a, ServiceError) else answer_bytes(a) for a in answers]
 
-            app.state.recall_queue = RecallQueue[RecallKey, RecallResult](
+            app.state.recall_queue = RecallQueue[RecallKey, bytes](
                 run, max_batch=settings.recall_batch_max, limiter=limiter
             )
             app.state.keys = KeyService(settings, make_session_factory(engine), pepper)

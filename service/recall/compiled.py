@@ -14,6 +14,7 @@ new one (copy-on-write, O(N²) like the update itself) and swap it into the cach
 from __future__ import annotations
 
 import copy
+import math
 import threading
 from collections import OrderedDict
 from dataclasses import dataclass, field, replace
@@ -26,7 +27,7 @@ from service.engine import MemoryRule, VerdictThresholds
 from service.engine.bits import pack, packed_dots, unpack
 from service.engine.codec import Codec
 
-from .models import Fields
+from .models import DecodedField, Fields
 
 
 @dataclass
@@ -42,6 +43,17 @@ class FieldCandidates:
     bits: NDArray[np.uint8]  # (n_values, 8 ceil(units / 64)): whole words, see bits.pack
     units: int
     of_memory: NDArray[np.int64]
+    # value index -> its DecodedField at score 1 (immutable, so one per value serves all)
+    matched: dict[int, DecodedField] = field(default_factory=dict, repr=False, compare=False)
+
+    def exact(self, j: int) -> DecodedField:
+        """Value ``j`` decoded from a block that is exactly its code: score 1, z = √units."""
+        found = self.matched.get(j)
+        if found is None:
+            found = self.matched[j] = DecodedField(
+                value=self.values[j], score=1.0, z=round(math.sqrt(self.units), 3)
+            )
+        return found
 
     @classmethod
     def from_codes(

@@ -914,7 +914,8 @@ class RecallService:
             top_k=options.top_k,
             blocks=list(codec.schema.slices.values()),
         )
-        decoded = self._decode(compiled, result.states, verdicts.best)
+        # an overlap of exactly 1 is a state equal to its best memory's pattern
+        decoded = self._decode(compiled, result.states, verdicts.best, verdicts.overlap == 1.0)
         # Columns as Python lists once, not numpy scalars cue by cue: same values, a third of
         # the time for a batch
         keys, fields = compiled.keys, compiled.fields
@@ -971,11 +972,22 @@ class RecallService:
         return out
 
     def _decode(
-        self, compiled: CompiledMemory, states: np.ndarray, nearest: np.ndarray
+        self,
+        compiled: CompiledMemory,
+        states: np.ndarray,
+        nearest: np.ndarray,
+        whole: np.ndarray,
     ) -> list[dict[str, DecodedField]]:
+        """Each state's fields: per block, the stored value whose code is nearest.
+
+        ``whole`` marks states that are their nearest memory's pattern, whose every block is
+        that memory's own value's code (a pattern is its fields' codes side by side): those
+        are not compared again.
+        """
         slices = compiled.codec.schema.slices
         per_cue: list[dict[str, DecodedField]] = [{} for _ in range(states.shape[0])]
-        sf = states.astype(np.float32)
+        rest = np.flatnonzero(~whole)
+        sf = states[rest].astype(np.float32)
         for name, cand in compiled.candidates.items():
             block = sf[:, slices[name]]
             d = block.shape[1]
@@ -983,12 +995,12 @@ class RecallService:
             # Where a block is exactly that value's code, the value scores the maximum, 1, and
             # wins the tie rule below: the answer is known without the product (the common
             # case, a settled state on a stored memory).
-            exact = (block == cand.codes(own)).all(axis=1)
+            miss = np.flatnonzero(~(block == cand.codes(own[rest])).all(axis=1))
+            rows = rest[miss]  # the states whose block is not their memory's value's code
             best = own.copy()
             scores = np.ones(len(best), dtype=np.float64)
-            rows = np.flatnonzero(~exact)
             if rows.size:
-                full = cand.scores(block[rows])  # (rows, n_values)
+                full = cand.scores(block[miss])  # (rows, n_values)
                 # on equal scores, the nearest memory's own value wins
                 ranked = full.astype(np.float64)
                 ranked[np.arange(rows.size), own[rows]] += 1e-9
@@ -997,7 +1009,9 @@ class RecallService:
                 scores[rows] = full[np.arange(rows.size), picked]
             root = math.sqrt(d)
             for i, (j, m) in enumerate(zip(best.tolist(), scores.tolist(), strict=True)):
-                per_cue[i][name] = DecodedField(
-                    value=cand.values[j], score=round(m, 6), z=round(root * m, 3)
+                per_cue[i][name] = (
+                    cand.exact(j)
+                    if m == 1.0
+                    else DecodedField(value=cand.values[j], score=round(m, 6), z=round(root * m, 3))
                 )
         return per_cue

@@ -61,4 +61,30 @@ def test_decoding_matches_scoring_every_candidate(tmp_path: Path) -> None:
     states[50:60, first] = patterns[rng.integers(0, n_mem, size=10)][:, first]
     # the nearest memory need not be the one a state came from
     nearest = np.where(rng.random(60) < 0.7, picks, rng.integers(0, n_mem, size=60))
-    assert service._decode(compiled, states, nearest) == _reference(compiled, states, nearest)
+    expected = _reference(compiled, states, nearest)
+    # states that are their nearest memory's pattern are not compared again: the same answers
+    whole = (states == patterns[nearest]).all(axis=1)
+    assert whole.sum() >= 5
+    assert service._decode(compiled, states, nearest, whole) == expected
+    assert service._decode(compiled, states, nearest, np.zeros(60, dtype=bool)) == expected
+
+
+def test_every_memorys_pattern_is_its_own_values_codes_side_by_side(tmp_path: Path) -> None:
+    # what lets a state equal to a memory's pattern skip decoding: each block of the pattern
+    # is exactly the code of that memory's own value of the field
+    settings = Settings(data_dir=tmp_path)
+    upgrade_to_head(settings.resolved_database_url)
+    service = RecallService(
+        settings, make_session_factory(make_engine(settings.resolved_database_url))
+    )
+    service.create_collection(DEFAULT_TEAM, CollectionSpec(name="s", schema=demo_schema(), seed=9))
+    records = demo_records(n=120)
+    service.import_memories(
+        DEFAULT_TEAM, "s", [(i, k, dict(f)) for i, (k, f) in enumerate(records)]
+    )
+    service.recall(DEFAULT_TEAM, "s", [dict(records[0][1])], RecallOptions())  # compiles
+    [compiled] = list(service.cache._entries.values())
+    patterns = compiled.rule.patterns_
+    for name, cand in compiled.candidates.items():
+        block = patterns[:, compiled.codec.schema.slices[name]].astype(np.float32)
+        np.testing.assert_array_equal(block, cand.codes(cand.of_memory), err_msg=name)

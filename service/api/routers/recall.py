@@ -74,10 +74,8 @@ def count_verdicts(metrics: Any, results: list[RecallResult]) -> None:
 async def recall_one(state: Any, team: str, name: str, body: RecallRequest) -> bytes:
     """The answer body of one single-cue recall, through the app's run queue; a refusal
     raises. Shared by the route and the short path of :mod:`service.api.direct`."""
-    queue: RecallQueue[RecallKey, RecallResult] = state.recall_queue
-    result = await queue.submit((team, name, recall_options(body.options)), dict(body.cue))
-    count_verdicts(state.metrics, [result])
-    return answer_bytes(result)
+    queue: RecallQueue[RecallKey, bytes] = state.recall_queue
+    return await queue.submit((team, name, recall_options(body.options)), dict(body.cue))
 
 
 async def recall_many(state: Any, team: str, name: str, body: RecallBatchRequest) -> bytes:
@@ -88,14 +86,15 @@ async def recall_many(state: Any, team: str, name: str, body: RecallBatchRequest
     cues = [dict(c) for c in body.cues]
     options = recall_options(body.options)
 
-    def run() -> list[RecallResult]:
+    def run() -> bytes:
+        # written here, beside the results: the event loop has other requests to read
         answers = service.recall(team, name, cues, options)
         heap.after_run()
-        return answers
+        count_verdicts(state.metrics, answers)
+        return answer_bytes({"results": answers})
 
-    results = await anyio.to_thread.run_sync(run, limiter=state.engine_limiter)
-    count_verdicts(state.metrics, results)
-    return answer_bytes({"results": results})
+    answer: bytes = await anyio.to_thread.run_sync(run, limiter=state.engine_limiter)
+    return answer
 
 
 def _json(body: bytes) -> Response:
