@@ -223,15 +223,17 @@ class VerdictBatch:
 def _top2(
     m: NDArray[np.float32],
 ) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64]]:
-    """Index of the best column, best value and second-best value of each row."""
+    """Index of the best column, best value and second-best value of each row (``m`` is
+    changed while it runs, and given back as it was)."""
     best = np.argmax(m, axis=1).astype(np.int64)
     rows = np.arange(m.shape[0])
     top = m[rows, best].astype(np.float64)
     if m.shape[1] == 1:
         return best, top, np.full(m.shape[0], -1.0)
-    masked = m.copy()
-    masked[rows, best] = -np.inf
-    second = masked.max(axis=1).astype(np.float64)
+    kept = m[rows, best]  # masked in place for the second max, then put back
+    m[rows, best] = -np.inf
+    second = m.max(axis=1).astype(np.float64)
+    m[rows, best] = kept
     return best, top, second
 
 
@@ -438,10 +440,15 @@ def field_agreement(
     >>> field_agreement(s, c, [slice(0, 2), slice(2, 4)]).tolist()
     [-1.0]
     """
-    out = np.full(states.shape[0], np.inf)
-    for b in blocks:
-        cb = cues[:, b]
-        known = np.count_nonzero(cb, axis=1)
-        agree = np.einsum("ij,ij->i", states[:, b], cb) / np.maximum(known, 1)
-        out = np.where(known > 0, np.minimum(out, agree), out)
-    return np.where(np.isfinite(out), out, 1.0)
+    # Every block's sums in one product with the blocks' indicator columns: the terms are
+    # -1, 0 and +1, so the float32 sums are exact integers (below 2²⁴ units) whatever the order.
+    n_units = states.shape[1]
+    member = np.zeros((n_units, len(blocks)), dtype=np.float32)
+    for j, b in enumerate(blocks):
+        member[b, j] = 1.0
+    terms = np.concatenate([states * cues, (cues != 0).astype(np.float32)])
+    sums = (terms @ member).astype(np.float64)
+    agree_sum, known = sums[: states.shape[0]], sums[states.shape[0] :]
+    agree = np.where(known > 0, agree_sum / np.maximum(known, 1.0), np.inf)
+    least = agree.min(axis=1) if len(blocks) else np.full(states.shape[0], np.inf)
+    return np.where(np.isfinite(least), least, 1.0)
