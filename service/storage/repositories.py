@@ -157,6 +157,7 @@ class RevisionReader:
         self._local = threading.local()
         self._lock = threading.Lock()
         self._held: dict[threading.Thread, Any] = {}
+        self._parsed: dict[str | bytes, Any] = {}  # verdict options text -> its value
         self.opened = 0  # connections opened, for the tests
         if self._enabled:
             event.listen(engine, "engine_disposed", self._on_dispose)
@@ -177,8 +178,13 @@ class RevisionReader:
                 if row is None:
                     return None
                 options = row[2]
-                if isinstance(options, str | bytes):
-                    options = json.loads(options)
+                if isinstance(options, str | bytes):  # SQLite hands back the JSON text
+                    parsed = self._parsed.get(options)
+                    if parsed is None:
+                        if len(self._parsed) >= 256:
+                            self._parsed.clear()
+                        parsed = self._parsed[options] = json.loads(options)
+                    options = parsed
                 return CollectionRevision(int(row[0]), int(row[1]), dict(options or {}))
         with self._engine.connect() as pooled:
             return collection_revision(pooled, team, name)
