@@ -317,11 +317,12 @@ def _settled_at_once(
     What :func:`_settle_dense` would find, without its loop. The first update is x_w where
     the readout is one-hot or x_w holds more than half the softmax weight (the tests of
     ``DenseRule._fields``, on the same numbers). A cue that is x_w stays; the others become
-    x_w, whose next readout is decided on the dot products x_w·x counted straight from the
-    packed patterns (the loop's second step counts the same integers from the state): it is
-    settled where its own update, by the same two tests, is x_w again, and those products
-    go on to the verdict. Where products are not kept, only one-hot cues the
-    bound of :func:`_stays_on_winner` confirms are settled here, as the loop confirms them.
+    x_w. A one-hot cue that the bound of :func:`_stays_on_winner` confirms settles there as
+    the loop confirms it; for any other, x_w's next update is decided on the dot products
+    x_w·x counted straight from the packed patterns (the loop's second step counts the same
+    integers from the state): it is settled where that update, by the same two tests, is x_w
+    again, and those products go on to the verdict. Where products are not kept, only cues
+    the bound confirms are settled here.
     """
     dots, best, runner, top, one_hot, betas = first
     slow = np.flatnonzero(~one_hot)
@@ -333,23 +334,31 @@ def _settled_at_once(
     fixed = top == n_units
     rows = np.flatnonzero(~fixed)
     state_dots = dots
-    if rows.size and limit == 1:
-        return None
-    if rows.size and keep:
-        after = row_dots(rule._bits, best[rows], n_units)
-        full = np.full(rows.size, n_units, dtype=np.int64)
-        _, best2, _, top2, one_hot2, betas2 = rule._rank(after, rule._betas(after, full))
-        slow2 = np.flatnonzero(~one_hot2)
-        if slow2.size:
-            one_hot2[slow2] = rule._dominant(rule._weights(after, betas2, slow2), best2[slow2])
-        if not (one_hot2 & (top2 == n_units)).all():  # x_w's own update is x_w again
+    known = np.ones(n_cues, dtype=bool)
+    if rows.size:
+        if limit == 1:
             return None
-        state_dots = dots.copy()
-        state_dots[rows] = after
-    elif rows.size:
-        gap = rule._one_hot_gap(betas[rows])
-        if not _stays_on_winner(runner[rows], top[rows], n_units, gap).all():
-            return None
+        # one-hot cues the bound confirms are settled as the loop confirms them, without x_w's
+        # products (the verdict counts those only if it needs them)
+        proven = one_hot[rows]
+        if proven.any():
+            gap = rule._one_hot_gap(betas[rows[proven]])
+            proven[proven] = _stays_on_winner(runner[rows[proven]], top[rows[proven]], n_units, gap)
+        known[rows[proven]] = False
+        unproven = rows[~proven]
+        if unproven.size:
+            if not keep:
+                return None
+            after = row_dots(rule._bits, best[unproven], n_units)
+            full = np.full(unproven.size, n_units, dtype=np.int64)
+            _, best2, _, top2, one_hot2, betas2 = rule._rank(after, rule._betas(after, full))
+            slow2 = np.flatnonzero(~one_hot2)
+            if slow2.size:
+                one_hot2[slow2] = rule._dominant(rule._weights(after, betas2, slow2), best2[slow2])
+            if not (one_hot2 & (top2 == n_units)).all():  # x_w's own update is x_w again
+                return None
+            state_dots = dots.copy()
+            state_dots[unproven] = after
     states = cues.copy()
     if rows.size:
         states[rows] = rule._x[best[rows]]  # ±1.0 → ±1 exactly
@@ -361,7 +370,7 @@ def _settled_at_once(
         cues=cues if keep else None,
         cue_dots=dots if keep else None,
         state_dots=state_dots if keep else None,
-        state_dots_known=np.ones(n_cues, dtype=bool) if keep else None,
+        state_dots_known=known if keep else None,
     )
 
 
