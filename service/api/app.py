@@ -14,7 +14,6 @@ from collections.abc import AsyncIterator, Callable, Sequence
 from contextlib import asynccontextmanager
 from typing import Any
 
-import anyio
 from fastapi import FastAPI
 from fastapi.openapi.utils import get_openapi
 from sqlalchemy.engine import make_url
@@ -33,6 +32,7 @@ from . import docs
 from .batching import RecallQueue
 from .bodies import BodyLimitMiddleware
 from .direct import DirectRecallMiddleware
+from .engine_threads import EngineThreads
 from .errors import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_error_handlers
 from .heap import HeapFreezer
 from .lifecycle import Lifecycle
@@ -107,7 +107,7 @@ def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
             app.state.service = service = RecallService(settings, make_session_factory(engine))
             # Recalls are numpy work holding the GIL between products: threads beyond the
             # worker's share of cores only contend, so they take turns (see engine_threads).
-            app.state.engine_limiter = limiter = anyio.CapacityLimiter(settings.engine_threads)
+            app.state.engine_threads = threads = EngineThreads(settings.engine_threads)
             app.state.heap = heap = HeapFreezer(lambda: service.cache.generation)
 
             def run(key: RecallKey, cues: Sequence[Any]) -> list[bytes | ServiceError]:
@@ -119,7 +119,7 @@ def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
                 return [a if isinstance(a, ServiceError) else answer_bytes(a) for a in answers]
 
             app.state.recall_queue = RecallQueue[RecallKey, bytes](
-                run, max_batch=settings.recall_batch_max, limiter=limiter
+                run, max_batch=settings.recall_batch_max, threads=threads
             )
             app.state.keys = KeyService(settings, make_session_factory(engine), pepper)
             app.state.jobs = ReconciliationService(app.state.service)
@@ -138,6 +138,7 @@ def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
             finally:
                 lifecycle.shut_down()
                 await run_in_threadpool(runner.stop)
+                await run_in_threadpool(threads.close)
         finally:
             engine.dispose()
 

@@ -34,8 +34,9 @@ import asyncio
 from collections.abc import Callable, Hashable, Sequence
 from typing import Any, Final, Generic, TypeVar
 
-import anyio
 import anyio.to_thread
+
+from .engine_threads import EngineThreads
 
 __all__ = ["GATHER_TURNS", "RecallQueue"]
 
@@ -57,8 +58,9 @@ class RecallQueue(Generic[K, R]):
         caller of the run. It is called in the thread pool, one run per key at a time.
     max_batch : int
         The most cues in one run; the rest wait for the next.
-    limiter : anyio.CapacityLimiter, optional
-        Bounds the runs (of all keys, and whatever else shares it) in threads at once.
+    threads : EngineThreads, optional
+        The threads the runs go to (shared with whatever else runs there, which bounds the
+        runs at once); by default anyio's worker threads.
     gather_turns : int
         Event-loop turns before each run, for requests already received to join it.
 
@@ -72,7 +74,7 @@ class RecallQueue(Generic[K, R]):
         self,
         run: Callable[[K, Sequence[Any]], Sequence[R | BaseException]],
         max_batch: int,
-        limiter: anyio.CapacityLimiter | None = None,
+        threads: EngineThreads | None = None,
         gather_turns: int = GATHER_TURNS,
     ) -> None:
         if max_batch < 1:
@@ -81,7 +83,7 @@ class RecallQueue(Generic[K, R]):
             raise ValueError(f"gather_turns must be at least 0, got {gather_turns}")
         self.gather_turns = gather_turns
         self._run = run
-        self._limiter = limiter
+        self._threads = threads
         self.max_batch = max_batch
         self._waiting: dict[K, list[tuple[Any, asyncio.Future[R]]]] = {}
         self._busy: set[K] = set()
@@ -118,8 +120,11 @@ class RecallQueue(Generic[K, R]):
                 if not live:
                     continue
                 try:
-                    answers = await anyio.to_thread.run_sync(
-                        self._run, key, [cue for cue, _ in live], limiter=self._limiter
+                    cues = [cue for cue, _ in live]
+                    answers = await (
+                        anyio.to_thread.run_sync(self._run, key, cues)
+                        if self._threads is None
+                        else self._threads.run(self._run, key, cues)
                     )
                 except BaseException as exc:  # every caller of the run must learn of it
                     for _, future in live:

@@ -5,7 +5,6 @@ from __future__ import annotations
 from collections import Counter
 from typing import Annotated, Any
 
-import anyio.to_thread
 import orjson
 from fastapi import APIRouter, Body, Request, Response
 
@@ -93,7 +92,7 @@ async def recall_many(state: Any, team: str, name: str, body: RecallBatchRequest
         count_verdicts(state.metrics, answers)
         return answer_bytes({"results": answers})
 
-    answer: bytes = await anyio.to_thread.run_sync(run, limiter=state.engine_limiter)
+    answer: bytes = await state.engine_threads.run(run)
     return answer
 
 
