@@ -21,6 +21,7 @@ array([[1., 1.]], dtype=float32)
 
 from __future__ import annotations
 
+import functools
 from typing import Any, Final
 
 import numba
@@ -126,6 +127,14 @@ def packed_dots(states: NDArray[Any], bits: NDArray[np.uint8], n_units: int) -> 
     return out
 
 
+@functools.lru_cache(maxsize=64)
+def _all_known(n_units: int) -> NDArray[np.uint64]:
+    """The known-units mask of a whole row of ``n_units``, as one row of words (read-only)."""
+    mask = words(pack(np.ones((1, n_units), dtype=np.int8)))
+    mask.flags.writeable = False
+    return mask
+
+
 def row_dots(bits: NDArray[np.uint8], rows: NDArray[np.intp], n_units: int) -> NDArray[np.float32]:
     """x_r · x for the packed rows ``rows`` against every packed row x, shape (len(rows),
     n_rows): :func:`packed_dots` of those rows unpacked, without unpacking and packing them
@@ -135,7 +144,7 @@ def row_dots(bits: NDArray[np.uint8], rows: NDArray[np.intp], n_units: int) -> N
     out = np.empty((len(rows), stored.shape[0]), dtype=np.float32)
     if out.size:
         signs = np.ascontiguousarray(stored[rows])
-        known = np.repeat(words(pack(np.ones((1, n_units), dtype=np.int8))), len(rows), axis=0)
+        known = np.repeat(_all_known(n_units), len(rows), axis=0)
         n_known = np.full(len(rows), n_units, dtype=np.float32)
         _count_dots(signs, known, n_known, stored, out)
     return out

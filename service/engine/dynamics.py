@@ -325,10 +325,7 @@ def _settled_at_once(
     the bound confirms are settled here.
     """
     dots, best, runner, top, one_hot, betas = first
-    slow = np.flatnonzero(~one_hot)
-    if slow.size and not (
-        keep and rule._dominant(rule._weights(dots, betas, slow), best[slow]).all()
-    ):
+    if not one_hot.all() and not (keep and _updates_to_best(rule, first).all()):
         return None
     n_cues, n_units = cues.shape
     fixed = top == n_units
@@ -351,11 +348,9 @@ def _settled_at_once(
                 return None
             after = row_dots(rule._bits, best[unproven], n_units)
             full = np.full(unproven.size, n_units, dtype=np.int64)
-            _, best2, _, top2, one_hot2, betas2 = rule._rank(after, rule._betas(after, full))
-            slow2 = np.flatnonzero(~one_hot2)
-            if slow2.size:
-                one_hot2[slow2] = rule._dominant(rule._weights(after, betas2, slow2), best2[slow2])
-            if not (one_hot2 & (top2 == n_units)).all():  # x_w's own update is x_w again
+            second = rule._rank(after, rule._betas(after, full))
+            # x_w's own update is x_w again
+            if not (_updates_to_best(rule, second) & (second[3] == n_units)).all():
                 return None
             state_dots = dots.copy()
             state_dots[unproven] = after
@@ -372,6 +367,18 @@ def _settled_at_once(
         state_dots=state_dots if keep else None,
         state_dots_known=known if keep else None,
     )
+
+
+def _updates_to_best(rule: DenseRule, ranked: tuple[Any, ...]) -> NDArray[np.bool_]:
+    """Whether each state's sign update is its best memory's pattern, from what
+    ``DenseRule._rank`` gave: the readout is one-hot, or the best memory holds more than half
+    the softmax weight (the two tests of ``DenseRule._fields``, on the same numbers)."""
+    dots, best, _, _, one_hot, betas = ranked
+    out = np.array(one_hot, dtype=bool)
+    slow = np.flatnonzero(~out)
+    if slow.size:
+        out[slow] = rule._dominant(rule._weights(dots, betas, slow), best[slow])
+    return out
 
 
 def _settle_one(
