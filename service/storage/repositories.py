@@ -154,9 +154,8 @@ class RevisionReader:
         compiled = _REVISION_QUERY.compile(dialect=engine.dialect)
         self._sql = str(compiled)
         self._order = tuple(compiled.positiontup or ()) if compiled.positional else None
-        self._local = threading.local()
         self._lock = threading.Lock()
-        self._held: dict[threading.Thread, Any] = {}
+        self._held: dict[threading.Thread, Any] = {}  # each thread's connection
         self._parsed: dict[str | bytes, Any] = {}  # verdict options text -> its value
         self.opened = 0  # connections opened, for the tests
         if self._enabled:
@@ -165,7 +164,7 @@ class RevisionReader:
     def read(self, team: str, name: str) -> CollectionRevision | None:
         """Id, revision and verdict options of ``team``'s collection ``name``, or None."""
         if self._enabled:
-            connection = getattr(self._local, "connection", None)
+            connection = self._held.get(threading.current_thread())
             try:
                 if connection is None:
                     connection = self._open()
@@ -219,11 +218,9 @@ class RevisionReader:
                 _close_quietly(self._held.pop(thread))
             self._held[threading.current_thread()] = connection
             self.opened += 1
-        self._local.connection = connection
         return connection
 
     def _drop(self) -> None:
-        self._local.connection = None
         with self._lock:
             connection = self._held.pop(threading.current_thread(), None)
         if connection is not None:

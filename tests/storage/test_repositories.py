@@ -297,7 +297,7 @@ class TestRevisionReader:
         mine_id = self._seed(session_factory)
         reader = RevisionReader(engine)
         assert reader.read(DEFAULT_TEAM_NAME, "specimens") is not None
-        reader._local.connection.close()  # as a restarted database server would leave it
+        reader._held[threading.current_thread()].close()  # as a restarted server would
         found = reader.read(DEFAULT_TEAM_NAME, "specimens")
         assert found is not None
         assert found.id == mine_id
@@ -312,7 +312,7 @@ class TestRevisionReader:
         mine_id = self._seed(session_factory)
         reader = RevisionReader(engine)
         reader.read(DEFAULT_TEAM_NAME, "specimens")
-        kept = reader._local.connection
+        kept = reader._held[threading.current_thread()]
         engine.dispose()
         assert reader._held == {}
         with pytest.raises(Exception, match="closed"):
