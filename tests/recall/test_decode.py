@@ -36,19 +36,26 @@ def _reference(
     return out
 
 
-def test_decoding_matches_scoring_every_candidate(tmp_path: Path) -> None:
+def _compiled_demo(tmp_path: Path, seed: int, n: int) -> tuple[RecallService, CompiledMemory]:
+    """A service over ``n`` demo specimens, and their collection compiled."""
     settings = Settings(data_dir=tmp_path)
     upgrade_to_head(settings.resolved_database_url)
     service = RecallService(
         settings, make_session_factory(make_engine(settings.resolved_database_url))
     )
-    service.create_collection(DEFAULT_TEAM, CollectionSpec(name="s", schema=demo_schema(), seed=5))
-    records = demo_records(n=200)
+    spec = CollectionSpec(name="s", schema=demo_schema(), seed=seed)
+    service.create_collection(DEFAULT_TEAM, spec)
+    records = demo_records(n=n)
     service.import_memories(
         DEFAULT_TEAM, "s", [(i, k, dict(f)) for i, (k, f) in enumerate(records)]
     )
     service.recall(DEFAULT_TEAM, "s", [dict(records[0][1])], RecallOptions())  # compiles
     [compiled] = list(service.cache._entries.values())
+    return service, compiled
+
+
+def test_decoding_matches_scoring_every_candidate(tmp_path: Path) -> None:
+    service, compiled = _compiled_demo(tmp_path, seed=5, n=200)
     rng = np.random.default_rng(3)
     patterns = compiled.rule.patterns_
     n_mem, n_units = patterns.shape
@@ -72,18 +79,7 @@ def test_decoding_matches_scoring_every_candidate(tmp_path: Path) -> None:
 def test_every_memorys_pattern_is_its_own_values_codes_side_by_side(tmp_path: Path) -> None:
     # what lets a state equal to a memory's pattern skip decoding: each block of the pattern
     # is exactly the code of that memory's own value of the field
-    settings = Settings(data_dir=tmp_path)
-    upgrade_to_head(settings.resolved_database_url)
-    service = RecallService(
-        settings, make_session_factory(make_engine(settings.resolved_database_url))
-    )
-    service.create_collection(DEFAULT_TEAM, CollectionSpec(name="s", schema=demo_schema(), seed=9))
-    records = demo_records(n=120)
-    service.import_memories(
-        DEFAULT_TEAM, "s", [(i, k, dict(f)) for i, (k, f) in enumerate(records)]
-    )
-    service.recall(DEFAULT_TEAM, "s", [dict(records[0][1])], RecallOptions())  # compiles
-    [compiled] = list(service.cache._entries.values())
+    _, compiled = _compiled_demo(tmp_path, seed=9, n=120)
     patterns = compiled.rule.patterns_
     for name, cand in compiled.candidates.items():
         block = patterns[:, compiled.codec.schema.slices[name]].astype(np.float32)
