@@ -226,6 +226,39 @@ def check_fitted_rule(rule: Any, name: str = "rule") -> MemoryRule:
 FULL_READOUT_MAX_MEMORIES: Final = 4096
 
 
+#: The scale of a weight's first integer part in :func:`exact_readout`.
+_HI_BITS: Final = 23
+
+
+def exact_readout(weights: F32, patterns: F32) -> F32:
+    """``weights @ patterns`` for softmax weights (rows in [0, 1] summing to at most 1) and
+    ±1 patterns, the same bits whatever the row count, the BLAS or the machine.
+
+    A float32 matrix product may sum a row in an order that depends on how many rows come
+    with it (OpenBLAS does on an AMD EPYC, in the last bits), and a field near zero then
+    takes either sign: a cue's answer would depend on the cues settled beside it. Here each
+    weight is split into two integers, w ≈ hi / 2²³ + lo / 2ᵐ, and each part is multiplied
+    alone: every partial sum of ±hi is an integer of magnitude at most Σ hi ≤ 2²³ + k/2, and
+    of ±lo at most 2²², all below 2²⁴, so float32 adds them exactly in any order (k is the
+    row length). The two exact sums are joined in float64. What the split leaves out is at
+    most half a unit of 2⁻ᵐ a weight, k 2⁻⁽ᵐ⁺¹⁾ ≤ 2 k² / 2⁴⁷ on a field (5e-7 at k = 4096),
+    with m = 46 - ⌈log₂ k⌉.
+
+    >>> x = np.array([[1, -1, 1], [-1, -1, 1]], dtype=np.float32)
+    >>> w = np.array([[0.75, 0.25]], dtype=np.float32)
+    >>> exact_readout(w, x).tolist()
+    [[0.5, -1.0, 1.0]]
+    """
+    k = max(int(weights.shape[1]), 2)
+    lo_bits = 46 - math.ceil(math.log2(k))
+    hi = np.rint(weights * np.float32(2.0**_HI_BITS))
+    rest = weights - hi * np.float32(2.0**-_HI_BITS)  # exact: both are multiples of w's ulp
+    lo = np.rint(rest * np.float32(2.0**lo_bits))
+    fields = (hi @ patterns).astype(np.float64) * 2.0**-_HI_BITS
+    fields += (lo @ patterns).astype(np.float64) * 2.0**-lo_bits
+    return np.asarray(fields, dtype=np.float32)
+
+
 def _hash_header(h: Any, dtype: np.dtype[Any], shape: tuple[int, ...]) -> None:
     h.update(str(dtype).encode())
     h.update(str(shape).encode())
@@ -312,11 +345,14 @@ class _MatrixRule(MemoryRule):
     def local_fields(self, states: F32, n_known: NDArray[np.int64] | None = None) -> F32:
         """Local fields h = s W for a batch of states, shape (n_states, n_units).
 
-        Each state's fields are the same bits whether it comes alone or in a batch, so a cue's
-        answer never depends on the cues settled beside it: numpy multiplies a lone row with a
-        matrix-vector routine that sums in another order than the matrix product, so a lone
-        state of real-valued weights goes through the product as two equal rows. (Integer
-        weights, the Hebbian counts, are exact either way.)
+        Integer weights (the Hebbian counts) give exact fields, the same bits alone or in a
+        batch. Real-valued weights (Storkey, projection) are summed by the BLAS, whose order
+        can depend on the batch: numpy multiplies a lone row with a matrix-vector routine, so
+        a lone state goes through the product as two equal rows, which matched any batch with
+        OpenBLAS on an Intel Xeon; on an AMD EPYC the product of a few rows sums in another
+        order than that of many, in the last bits. A unit's sign can then differ only where
+        its field is within float32 rounding of zero; the energies, computed from the fields,
+        are taken one state at a time (see :meth:`energy`).
         """
         self._require_fitted()
         if states.shape[0] == 1 and self._scale == 1.0:
@@ -328,9 +364,19 @@ class _MatrixRule(MemoryRule):
         return h
 
     def energy(self, states: F32, n_known: NDArray[np.int64] | None = None) -> F64:
-        """E = -½ sᵀ W s for each state, shape (n_states,)."""
-        h = self.local_fields(states).astype(np.float64)
-        return np.asarray(-0.5 * np.einsum("ij,ij->i", states.astype(np.float64), h))
+        """E = -½ sᵀ W s for each state, shape (n_states,).
+
+        One state at a time, each copied out as a state sent alone is: a float32 product of
+        many states can sum in another order than a product of one (OpenBLAS does on an AMD
+        EPYC, in the last digits), and a state's energy must not depend on the states beside
+        it. Energies are only computed when a caller asks for the trace.
+        """
+        out = np.empty(states.shape[0], dtype=np.float64)
+        for i in range(states.shape[0]):
+            row = np.array(states[i : i + 1], dtype=np.float32)
+            h = self.local_fields(row).astype(np.float64)
+            out[i] = -0.5 * np.einsum("ij,ij->i", row.astype(np.float64), h)[0]
+        return out
 
     def unit_weights(self, unit: int) -> F32:
         row: F32 = self._w[unit]
@@ -981,28 +1027,22 @@ class DenseRule(MemoryRule):
         return np.asarray(weights[np.arange(best.size), best] > np.float32(0.5 + 1e-3))
 
     def _readout(self, a: F32) -> F32:
-        """``a @ X`` over the weights above ``readout_tolerance / P``.
+        """``a @ X`` over the weights above ``readout_tolerance / P``, by :func:`exact_readout`.
 
         The dropped weights move a field by less than the tolerance all together; kept, they
         would be float32 subnormals (a softmax's far tail), which slow a product many times
-        over. Each state's fields are the same bits whichever states are settled beside it:
-        up to :data:`FULL_READOUT_MAX_MEMORIES` memories one product over all of them (a lone
-        state as two equal rows, since numpy would hand a single row to a matrix-vector
-        routine that sums in another order; OpenBLAS's matrix product sums each row alike
-        whatever the row count), above it each state on its own from only the memories it
-        weighs. Only states whose readout is not one-hot come here.
+        over. Up to :data:`FULL_READOUT_MAX_MEMORIES` memories it is one product over all of
+        them; above it each state on its own from only the memories it weighs. Only states
+        whose readout is not one-hot come here.
         """
         n_states, n_mem = a.shape
         keep = a > np.float32(self.readout_tolerance / n_mem)
         if n_mem <= FULL_READOUT_MAX_MEMORIES:
-            weights = np.where(keep, a, np.float32(0.0))
-            if n_states == 1:
-                weights = np.concatenate([weights, weights])
-            return np.asarray((weights @ self._x)[:n_states], dtype=np.float32)
+            return exact_readout(np.where(keep, a, np.float32(0.0)), self._x)
         out = np.empty((n_states, self._x.shape[1]), dtype=np.float32)
         for i in range(n_states):
             cols = np.flatnonzero(keep[i])
-            out[i] = a[i, cols] @ self._x[cols]
+            out[i] = exact_readout(a[i : i + 1, cols], self._x[cols])[0]
         return out
 
     def energy(self, states: F32, n_known: NDArray[np.int64] | None = None) -> F64:

@@ -20,6 +20,7 @@ from service.engine import (
     make_rule,
     settle,
 )
+from service.engine.rules import exact_readout
 
 PatternMaker = Callable[[int, int], NDArray[np.int8]]
 
@@ -356,6 +357,42 @@ class TestDenseRule:
         np.testing.assert_array_equal(np.sign(fast)[firm], np.sign(plain)[firm])
         dominant = a.max(axis=1) > 0.5 + 1e-3
         assert 0 < dominant.sum() < len(states), "both kinds of state must be under test"
+
+    @pytest.mark.parametrize("n_mem", [300, 5000])
+    def test_a_states_fields_are_the_same_bits_whatever_the_states_beside_it(
+        self, random_patterns: PatternMaker, n_mem: int
+    ) -> None:
+        # Both readout paths (one product up to FULL_READOUT_MAX_MEMORIES, row by row above).
+        # A float32 product of many rows may sum a row in another order than a product of
+        # one (seen with OpenBLAS on an AMD EPYC): the fields must not show it.
+        X = random_patterns(n_mem, 200)
+        rule = DenseRule(beta=6.0).fit(X)
+        rng = np.random.default_rng(n_mem)
+        states = X[rng.integers(0, n_mem, size=40)].astype(np.float32)
+        states[rng.random(states.shape) < 0.3] *= -1  # doubt: many memories carry weight
+        together = rule.local_fields(states)
+        for i in (0, 7, 39):
+            np.testing.assert_array_equal(rule.local_fields(states[i : i + 1])[0], together[i])
+            np.testing.assert_array_equal(rule.local_fields(states[: i + 1])[i], together[i])
+        # and they are the real fields: Xᵀ softmax(β' X s) in float64 (Ramsauer et al. 2020)
+        plain = rule.softmax(states).astype(np.float64) @ X.astype(np.float64)
+        np.testing.assert_allclose(together, plain, atol=1e-5)
+
+    def test_exact_readout_splits_each_weight_within_its_stated_bound(self) -> None:
+        # Rows of softmax weights (summing to 1) over k = 4096 ±1 patterns, the worst k of the
+        # one-product path: the error bound in the docstring is 2 k² / 2⁴⁷ = 2^-21.
+        rng = np.random.default_rng(5)
+        X = np.where(rng.random((4096, 64)) < 0.5, -1.0, 1.0).astype(np.float32)
+        logits = rng.normal(scale=3.0, size=(6, 4096))
+        w = np.exp(logits - logits.max(axis=1, keepdims=True))
+        w = (w / w.sum(axis=1, keepdims=True)).astype(np.float32)
+        exact = w.astype(np.float64) @ X.astype(np.float64)
+        got = exact_readout(w, X)
+        assert got.dtype == np.float32
+        # the float64 sum rounded to float32 is within half an ulp of |field| ≤ 1: 2^-25
+        assert np.abs(got - exact).max() <= 2.0**-21 + 2.0**-25
+        for rows in (1, 2, 5):
+            np.testing.assert_array_equal(exact_readout(w[:rows], X), got[:rows])
 
     def test_default_beta_grows_with_the_root_of_n_within_its_clip(self) -> None:
         # common practice, no published source: β = √N keeps chance logits at ½ nat
