@@ -85,3 +85,28 @@ def test_an_invalid_cue_is_refused_alone(
 def test_errors_of_the_collection_are_raised_for_all(service: RecallService) -> None:
     with pytest.raises(CollectionNotFound):
         service.recall_each(DEFAULT_TEAM, "nowhere", [{"taxon": "x"}], RecallOptions())
+
+
+def test_a_batch_larger_than_one_run_is_settled_in_runs_with_the_same_answers(
+    service: RecallService,
+    records: list[tuple[str, dict[str, object]]],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # 40 cues through runs of 7 (five full runs and a short one) against one run of all 40.
+    import service.recall.service as module
+
+    cues = [{k: f[k] for k in list(f)[: 1 + i % len(f)]} for i, (_, f) in enumerate(records[:40])]
+    options = RecallOptions(top_k=3, include_energy=True)
+    whole = service.recall(DEFAULT_TEAM, "specimens", cues, options)
+    ran: list[int] = []
+    run = module.RecallService._execute_run
+
+    def counted(self: RecallService, compiled: object, cue_matrix: object, *rest: object) -> object:
+        ran.append(len(cue_matrix))  # type: ignore[arg-type]
+        return run(self, compiled, cue_matrix, *rest)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(module, "RUN_CUES", 7)
+    monkeypatch.setattr(module.RecallService, "_execute_run", counted)
+    in_runs = service.recall(DEFAULT_TEAM, "specimens", cues, options)
+    assert ran == [7, 7, 7, 7, 7, 5]
+    assert in_runs == whole
