@@ -904,15 +904,13 @@ class RecallService:
     ) -> list[RecallResult]:
         """Settle, judge and decode already-encoded cues against one compiled memory, in runs
         of at most :data:`RUN_CUES` (each cue's result is independent of the others)."""
-        if cue_matrix.shape[0] > RUN_CUES:
-            return [
-                r
-                for start in range(0, cue_matrix.shape[0], RUN_CUES)
-                for r in self._execute_run(
-                    compiled, cue_matrix[start : start + RUN_CUES], options, steps
-                )
-            ]
-        return self._execute_run(compiled, cue_matrix, options, steps)
+        return [
+            r
+            for start in range(0, cue_matrix.shape[0], RUN_CUES)
+            for r in self._execute_run(
+                compiled, cue_matrix[start : start + RUN_CUES], options, steps
+            )
+        ]
 
     def _execute_run(
         self,
