@@ -24,6 +24,7 @@ True
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import hmac
 import os
@@ -33,6 +34,7 @@ import string
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
+from pathlib import Path
 from typing import Any, Final, Literal
 
 from sqlalchemy.engine import make_url
@@ -238,18 +240,33 @@ def load_pepper(settings: Settings) -> bytes:
         )
     path = settings.data_dir.expanduser().absolute() / PEPPER_FILE
     path.parent.mkdir(parents=True, exist_ok=True)
-    try:
-        # O_EXCL: of two processes starting together, one writes and both read the same value.
-        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
-    except FileExistsError:
-        pass
-    else:
-        with os.fdopen(fd, "w", encoding="ascii") as out:
-            out.write(secrets.token_hex(32) + "\n")
+    if not path.exists():
+        _write_pepper_once(path)
     value = path.read_text(encoding="ascii").strip()
     if len(value) < 32:
         raise PepperMissing(f"{path} holds no usable pepper; delete it only if no key exists")
     return value.encode("ascii")
+
+
+def _write_pepper_once(path: Path) -> None:
+    """Write a new pepper to ``path`` unless another process has: workers starting together
+    on a new data directory each try, one wins, and every one reads the winner's whole file.
+
+    The pepper goes to a file of this process's first and is then linked into place, which
+    fails if a pepper is already there; creating ``path`` itself and writing it after would
+    let another worker read it empty in between (seen with two workers on a new directory).
+    """
+    draft = path.with_name(f".{path.name}.{os.getpid()}.{secrets.token_hex(4)}")
+    fd = os.open(draft, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    try:
+        with os.fdopen(fd, "w", encoding="ascii") as out:
+            out.write(secrets.token_hex(32) + "\n")
+            out.flush()
+            os.fsync(out.fileno())
+        with contextlib.suppress(FileExistsError):
+            os.link(draft, path)
+    finally:
+        draft.unlink(missing_ok=True)
 
 
 def _now() -> datetime:

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import multiprocessing
 import os
 import stat
+import sys
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
@@ -287,6 +289,14 @@ class TestAudit:
             keys.audit_page(1, None, 4)
 
 
+def _pepper_or_error(data_dir: str) -> str:
+    """The pepper a process reads from ``data_dir``, or the error it met."""
+    try:
+        return load_pepper(Settings(data_dir=Path(data_dir))).decode("ascii")
+    except Exception as exc:
+        return f"{type(exc).__name__}: {exc}"
+
+
 class TestPepper:
     def test_sqlite_generates_a_private_pepper_once(self, tmp_path: Path) -> None:
         settings = Settings(data_dir=tmp_path / "data")
@@ -295,6 +305,19 @@ class TestPepper:
         assert len(first) >= 32
         mode = stat.S_IMODE(os.stat(tmp_path / "data" / "key_pepper").st_mode)
         assert mode == 0o600
+
+    @pytest.mark.skipif(sys.platform != "linux", reason="forks the test process")
+    def test_processes_starting_together_all_read_one_whole_pepper(self, tmp_path: Path) -> None:
+        # Workers starting on a new data directory each try to write the pepper; one reading
+        # the file between another's create and write used to find it empty and not start.
+        context = multiprocessing.get_context("fork")
+        with context.Pool(6) as pool:
+            for attempt in range(12):
+                data_dir = str(tmp_path / f"data-{attempt}")
+                outcomes = pool.map(_pepper_or_error, [data_dir] * 12)
+                assert len(set(outcomes)) == 1, outcomes
+                assert len(outcomes[0]) == 64, outcomes[0]
+                assert os.listdir(data_dir) == ["key_pepper"]  # no draft left behind
 
     def test_a_configured_pepper_wins(self, tmp_path: Path) -> None:
         settings = Settings(data_dir=tmp_path, key_pepper=SecretStr("k" * 40))
