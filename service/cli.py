@@ -15,6 +15,7 @@ import shlex
 import socket
 import sys
 import textwrap
+import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Final, NoReturn
@@ -348,7 +349,11 @@ def _bind(host: str, port: int) -> socket.socket:
     return sock
 
 
-def _run_server(app: FastAPI, sock: socket.socket, settings: Settings) -> int:
+def _run_server(
+    app: FastAPI, sock: socket.socket, settings: Settings, *, started: Any = None
+) -> int:
+    """Serve ``app`` on ``sock`` until stopped; ``started`` (an event), when given, is set
+    once the server serves."""
     import uvicorn
 
     from service.api.logs import configure_logging
@@ -367,6 +372,8 @@ def _run_server(app: FastAPI, sock: socket.socket, settings: Settings) -> int:
         **_server_options(),
     )
     server = uvicorn.Server(config)
+    if started is not None:
+        _report_started(server, started)
     try:
         server.run(sockets=[sock])
     finally:
@@ -374,6 +381,20 @@ def _run_server(app: FastAPI, sock: socket.socket, settings: Settings) -> int:
     if not server.started:
         raise CommandError("the server did not start; see the log above for the reason")
     return EXIT_OK
+
+
+def _report_started(server: Any, started: Any) -> None:
+    """Set ``started`` once ``server`` has finished its start-up, from a daemon thread."""
+    import threading
+
+    def watch() -> None:
+        while not server.should_exit:
+            if server.started:
+                started.set()
+                return
+            time.sleep(0.05)
+
+    threading.Thread(target=watch, name="cuebank-started", daemon=True).start()
 
 
 def _require_migrated(settings: Settings) -> None:
@@ -404,8 +425,6 @@ def run_serve(args: argparse.Namespace) -> int:
             raise CommandError(f"cannot listen on {settings.host}:{settings.port}: {exc}") from None
         return _run_server(create_app(settings), sock, settings)
 
-    import uvicorn
-
     # Worker processes build their own settings from the environment, so the command-line
     # overrides travel there too.
     for option, variable in (("data_dir", "CUEBANK_DATA_DIR"), ("host", "CUEBANK_HOST")):
@@ -423,6 +442,21 @@ def run_serve(args: argparse.Namespace) -> int:
         _bind(settings.host, settings.port).close()
     except OSError as exc:
         raise CommandError(f"cannot listen on {settings.host}:{settings.port}: {exc}") from None
+    from service.workers import WorkerPool, spreads_connections
+
+    if spreads_connections():
+        # a socket per worker, so the kernel spreads the connections (see service.workers)
+        pool = WorkerPool(
+            args.workers,
+            _serve_worker,
+            (settings.host, settings.port),
+            stop_seconds=float(_server_options()["timeout_graceful_shutdown"]) + 5.0,
+        )
+        if pool.run() != 0:
+            raise CommandError("a worker stopped during start-up; see the log above")
+        return EXIT_OK
+    import uvicorn
+
     try:
         uvicorn.run(
             "service.cli:app_from_environment",
@@ -439,6 +473,23 @@ def run_serve(args: argparse.Namespace) -> int:
         if exc.code not in (None, 0):
             raise CommandError("the server stopped with an error; see the log above") from None
     return EXIT_OK
+
+
+def _serve_worker(started: Any, host: str, port: int) -> None:
+    """One worker of ``cuebank serve --workers N``: the app on a socket of its own.
+
+    Runs in a spawned process; ``started`` (an event) is set once the server serves.
+    """
+    from service.settings import get_settings
+    from service.workers import reuse_port_socket
+
+    sock = reuse_port_socket(host, port, listen=False)  # the server listens once it is ready
+    try:
+        code = _run_server(app_from_environment(), sock, get_settings(), started=started)
+    except CommandError as exc:
+        print(f"cuebank serve: {exc}", file=sys.stderr)
+        code = exc.code
+    sys.exit(code)
 
 
 def _demo_socket(port: int) -> tuple[socket.socket, str | None]:

@@ -13,7 +13,7 @@ import socket
 import subprocess
 import sys
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import IO, Any
 
@@ -116,12 +116,14 @@ class ServerProcess:
         *,
         port: int | None = None,
         warm: bool = False,
+        args: Sequence[str] = (),
         **env: str,
     ) -> None:
         self.data_dir = data_dir
         self.database_url = database_url
         self.port = port or free_port()
         self.warm = warm
+        self.args = tuple(args)
         self.env = server_env(data_dir, database_url, **env)
         self.log = log
         self.proc: subprocess.Popen[bytes] | None = None
@@ -142,7 +144,7 @@ class ServerProcess:
         python = [sys.executable, "-c", WARM_START] if self.warm else [sys.executable, "-m"]
         command = [*python, *([] if self.warm else ["service.cli"]), "serve"]
         self.proc = subprocess.Popen(
-            [*command, "--host", "127.0.0.1", "--port", str(self.port)],
+            [*command, "--host", "127.0.0.1", "--port", str(self.port), *self.args],
             cwd=REPO,
             env=self.env,
             stdin=subprocess.PIPE if self.warm else subprocess.DEVNULL,
