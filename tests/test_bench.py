@@ -108,14 +108,18 @@ class TestQuickRun:
             assert row["non_2xx"] >= 0
         batch = [r for r in sec["rows"] if r["endpoint"].startswith("POST recall:batch")]
         assert all(r["cues_per_second"] > r["requests_per_second"] for r in batch)
-        # the batch figures are read against the engine run in as many processes at once
-        side_by_side = {
-            k: v
-            for k, v in sec["summary"].items()
-            if k.startswith("in_process_") and k.endswith("p_cues_per_second")
-        }
-        assert side_by_side
-        assert all(v > 0 for v in side_by_side.values())
+        # a modest batch and a large one, each read against the engine run on the same
+        # batches in as many processes at once
+        sizes = sorted(int(r["endpoint"].split("(")[1].rstrip(")")) for r in batch)
+        assert sorted(set(sizes)) == [64, 256]
+        for size in set(sizes):
+            side_by_side = [
+                v
+                for k, v in sec["summary"].items()
+                if k.startswith("in_process_") and k.endswith(f"p_{size}_cues_per_second")
+            ]
+            assert side_by_side
+            assert all(v > 0 for v in side_by_side)
         assert all(r["ratio_to"].startswith("in-process") for r in batch)
 
     def test_growth_reports_a_fitted_exponent_for_each_family(self, report: dict[str, Any]) -> None:
