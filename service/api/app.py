@@ -40,7 +40,13 @@ from .logs import RequestLogMiddleware
 from .metrics import Metrics
 from .metrics import router as metrics_router
 from .routers import collections, health, keys, memories, problems, recall, reconciliations
-from .routers.recall import RecallKey, answer_bytes, count_verdicts
+from .routers.recall import (
+    SHARED_BATCH_CUES,
+    RecallKey,
+    answer_bytes,
+    count_verdicts,
+    shared_batches,
+)
 from .security import AuthMiddleware, FailureLimiter, TokenBuckets, document_security
 
 __all__ = ["DatabaseNotReady", "create_app"]
@@ -120,6 +126,12 @@ def _lifespan(settings: Settings, migrate: bool) -> Callable[[FastAPI], Any]:
 
             app.state.recall_queue = RecallQueue[RecallKey, bytes](
                 run, max_batch=settings.recall_batch_max, threads=threads
+            )
+            app.state.batch_queue = RecallQueue[RecallKey, bytes](
+                shared_batches(service, heap, app.state),
+                max_batch=SHARED_BATCH_CUES,
+                threads=threads,
+                size=len,
             )
             app.state.keys = KeyService(settings, make_session_factory(engine), pepper)
             app.state.jobs = ReconciliationService(app.state.service)

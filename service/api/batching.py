@@ -57,12 +57,16 @@ class RecallQueue(Generic[K, R]):
         raise in that cue's caller alone. An exception *raised* by ``run`` reaches every
         caller of the run. It is called in the thread pool, one run per key at a time.
     max_batch : int
-        The most cues in one run; the rest wait for the next.
+        The most cues in one run (counted by ``size``); the rest wait for the next. A run
+        always takes at least one submission, however large.
     threads : EngineThreads, optional
         The threads the runs go to (shared with whatever else runs there, which bounds the
         runs at once); by default anyio's worker threads.
     gather_turns : int
         Event-loop turns before each run, for requests already received to join it.
+    size : callable, optional
+        How many cues a submission counts for (default one): a queue of whole batches
+        counts their cues.
 
     Attributes
     ----------
@@ -76,6 +80,7 @@ class RecallQueue(Generic[K, R]):
         max_batch: int,
         threads: EngineThreads | None = None,
         gather_turns: int = GATHER_TURNS,
+        size: Callable[[Any], int] | None = None,
     ) -> None:
         if max_batch < 1:
             raise ValueError(f"max_batch must be at least 1, got {max_batch}")
@@ -85,6 +90,7 @@ class RecallQueue(Generic[K, R]):
         self._run = run
         self._threads = threads
         self.max_batch = max_batch
+        self._size = size
         self._waiting: dict[K, list[tuple[Any, asyncio.Future[R]]]] = {}
         self._busy: set[K] = set()
         self._tasks: set[asyncio.Task[None]] = set()  # held, or a running drain could be lost
@@ -99,6 +105,24 @@ class RecallQueue(Generic[K, R]):
             self._start(key)
         return await future
 
+    def _cues(self, waiting: list[tuple[Any, asyncio.Future[R]]]) -> int:
+        """The cues ``waiting`` counts for."""
+        if self._size is None:
+            return len(waiting)
+        return sum(self._size(cue) for cue, _ in waiting)
+
+    def _taken(self, waiting: list[tuple[Any, asyncio.Future[R]]]) -> int:
+        """How many of ``waiting`` the next run takes: as many as fit in ``max_batch``, and
+        at least one."""
+        if self._size is None:
+            return min(len(waiting), self.max_batch)
+        total = 0
+        for i, (cue, _) in enumerate(waiting):
+            total += self._size(cue)
+            if total > self.max_batch:
+                return max(i, 1)
+        return len(waiting)
+
     def _start(self, key: K) -> None:
         self._busy.add(key)
         task = asyncio.get_running_loop().create_task(self._drain(key))
@@ -109,11 +133,12 @@ class RecallQueue(Generic[K, R]):
         try:
             while self._waiting.get(key):
                 for _ in range(self.gather_turns):
-                    if len(self._waiting[key]) >= self.max_batch:
-                        break
+                    if self._cues(self._waiting[key]) >= self.max_batch:
+                        break  # a full run is waiting
                     await asyncio.sleep(0)  # one turn: arrived requests move on to submit
                 waiting = self._waiting.pop(key)
-                batch, rest = waiting[: self.max_batch], waiting[self.max_batch :]
+                taken = self._taken(waiting)
+                batch, rest = waiting[:taken], waiting[taken:]
                 if rest:
                     self._waiting[key] = rest
                 live = [(cue, f) for cue, f in batch if not f.done()]  # callers gone: skip

@@ -8,8 +8,10 @@ already read, checked and parsed once (``service.api.bodies``) and the caller kn
 answers ``POST /v1/collections/{name}/recall`` and ``.../recall:batch`` itself when everything
 is ordinary: a key with the read scope, a JSON body the route's own request model accepts, and
 a recall that succeeds. It calls what the routes call (their request models, then
-``recall_one`` and ``recall_many``), so its answers are the routes', byte for byte; the tests
-hold the two to each other.
+``recall_one``, and for a batch ``recall_many_shared``, which settles concurrent batches
+together where the route settles each alone; a cue's answer does not depend on the cues that
+share its run), so its answers are the routes', byte for byte; the tests hold the two to each
+other.
 
 Anything else, and every error, goes on to the framework's route with the body replayed, which
 answers it as documented (a refused cue is settled a second time there; errors are the rare
@@ -27,7 +29,7 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from service.recall.auth import Principal
 
 from .bodies import JSON_DOCUMENT
-from .routers.recall import recall, recall_batch, recall_many, recall_one
+from .routers.recall import recall, recall_batch, recall_many_shared, recall_one
 from .routers.recall import router as recall_router
 from .schemas import RecallBatchRequest, RecallRequest
 
@@ -106,7 +108,7 @@ class DirectRecallMiddleware:
         try:
             if batch:
                 many = RecallBatchRequest.model_validate(document)
-                answer = await recall_many(app_state, team, name, many)
+                answer = await recall_many_shared(app_state, team, name, many)
             else:
                 single = RecallRequest.model_validate(document)
                 answer = await recall_one(app_state, team, name, single)

@@ -847,13 +847,9 @@ class RecallService:
             where = f"cue {i}: " if n_cues > 1 else ""
             raise CueInvalid(f"{where}{exc}", field=exc.field, cue=i) from None
 
-    def recall(
-        self, team: str, name: str, cues: Sequence[Any], options: RecallOptions
-    ) -> list[RecallResult]:
-        """Settle each cue and judge where it landed; results in the order of the cues.
-
-        One invalid cue refuses the whole call (:class:`CueInvalid` names it).
-        """
+    def check_batch(self, cues: Sequence[Any]) -> None:
+        """Refuse a batch with no cue (:class:`CueInvalid`) or more than ``max_batch``
+        (:class:`LimitExceeded`, 413), as :meth:`recall` does."""
         if not cues:
             raise CueInvalid("at least one cue is needed", field="cues")
         if len(cues) > self.settings.max_batch:
@@ -864,6 +860,15 @@ class RecallService:
                 maximum=self.settings.max_batch,
                 status=413,
             )
+
+    def recall(
+        self, team: str, name: str, cues: Sequence[Any], options: RecallOptions
+    ) -> list[RecallResult]:
+        """Settle each cue and judge where it landed; results in the order of the cues.
+
+        One invalid cue refuses the whole call (:class:`CueInvalid` names it).
+        """
+        self.check_batch(cues)
         self._check_options(options)
         compiled, steps = self._current(team, name, options)
         encoded = [self._encode_cue(compiled.codec, c, i, len(cues)) for i, c in enumerate(cues)]

@@ -71,6 +71,9 @@ REFUSED: list[Any] = [
 ]
 
 
+JSON = {"Content-Type": "application/json"}
+
+
 async def _open(app: FastAPI) -> Any:
     lifespan = app.router.lifespan_context(app)
     await lifespan.__aenter__()
@@ -247,6 +250,28 @@ async def test_ordinary_batches_are_answered_by_the_short_path_as_the_route_answ
         assert len(fast.json()["results"]) == len(body["cues"])
         _same(fast, slow)
     assert _short_path(_app(pair[0])).answered == len(BATCHES)
+
+
+async def test_concurrent_batches_settled_together_match_the_route_one_by_one(
+    pair: tuple[httpx.AsyncClient, httpx.AsyncClient],
+) -> None:
+    # concurrent batch requests with equal options share engine runs on the short path; each
+    # is answered as the route answers it alone, a refused one included (its cue numbered
+    # within its own request), and the others in its run are answered all the same
+    refused = {"cues": [FIRST, FIRST, {"no_such_field": 1}]}
+    bodies = [json.dumps(b).encode() for b in [*BATCHES[::2], refused] * 3]
+    fast, slow = pair
+    queue = _app(fast).state.batch_queue
+    runs_before = queue.runs
+    answers = await asyncio.gather(
+        *(fast.post(f"{BASE}/recall:batch", content=b, headers=JSON) for b in bodies)
+    )
+    for body, answer in zip(bodies, answers, strict=True):
+        _same(answer, await slow.post(f"{BASE}/recall:batch", content=body, headers=JSON))
+    assert [a.status_code for a in answers] == [200, 200, 422] * 3
+    assert answers[2].json()["cue"] == 2
+    assert _short_path(_app(fast)).answered == 6  # a fresh app: the ordinary ones
+    assert 1 <= queue.runs - runs_before < len(bodies)  # runs were shared
 
 
 @pytest.mark.parametrize("body", BATCHES_REFUSED, ids=range(len(BATCHES_REFUSED)))

@@ -128,6 +128,29 @@ async def test_a_caller_that_leaves_does_not_hold_up_the_others() -> None:
     assert 1 not in [c for b in run.batches for c in b]  # skipped, not run
 
 
+async def test_sized_submissions_fill_a_run_up_to_max_batch_cues() -> None:
+    # whole batches as submissions: a run takes as many as fit in max_batch cues, and a
+    # batch larger than that still runs, alone
+    gate = threading.Event()
+    runs: list[list[list[int]]] = []
+
+    def run(key: str, batches: Sequence[list[int]]) -> list[Any]:
+        assert gate.wait(5.0)
+        runs.append([list(b) for b in batches])
+        return [sum(b) for b in batches]
+
+    queue = RecallQueue(run, max_batch=8, size=len)
+    first = asyncio.ensure_future(queue.submit("k", [0]))
+    await asyncio.sleep(0.05)  # the first run is under way, held at the gate
+    sizes = [3, 4, 2, 12, 5, 1]
+    rest = [asyncio.ensure_future(queue.submit("k", [1] * n)) for n in sizes]
+    await asyncio.sleep(0.05)
+    gate.set()
+    answers = await asyncio.wait_for(asyncio.gather(first, *rest), 5.0)
+    assert answers == [0, *sizes]
+    assert [[len(b) for b in r] for r in runs] == [[1], [3, 4], [2], [12], [5, 1]]
+
+
 def test_max_batch_below_one_is_refused() -> None:
     with pytest.raises(ValueError, match="max_batch"):
         RecallQueue(Recorder(), max_batch=0)

@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 from collections import Counter
-from typing import Annotated, Any
+from collections.abc import Callable, Sequence
+from typing import Annotated, Any, Final
 
 import orjson
 from fastapi import APIRouter, Body, Request, Response
@@ -19,8 +20,9 @@ from service.api.schemas import (
     RecallRead,
     RecallRequest,
 )
+from service.recall.errors import ServiceError
 from service.recall.models import RecallOptions, RecallResult
-from service.recall.service import RecallService
+from service.recall.service import RUN_CUES, RecallService
 
 from . import BODY_PROBLEMS, problem_responses
 from .collections import CollectionPath
@@ -39,6 +41,10 @@ RECALL_PROBLEMS = (
 
 #: What cues must share to be settled together: team, collection and options.
 RecallKey = tuple[str, str, RecallOptions]
+
+#: The most cues of concurrent batch requests settled in one engine call (the engine still
+#: settles them in runs of ``RUN_CUES``); a larger request goes alone.
+SHARED_BATCH_CUES: Final = 4 * RUN_CUES
 
 
 def recall_options(spec: RecallOptionsSpec) -> RecallOptions:
@@ -94,6 +100,53 @@ async def recall_many(state: Any, team: str, name: str, body: RecallBatchRequest
 
     answer: bytes = await state.engine_threads.run(run)
     return answer
+
+
+async def recall_many_shared(state: Any, team: str, name: str, body: RecallBatchRequest) -> bytes:
+    """:func:`recall_many` for the short path: concurrent batch requests on the same
+    collection with the same options are settled in one engine call, up to
+    :data:`SHARED_BATCH_CUES` cues (see :func:`shared_batches`); any refusal raises, and the
+    route answers it."""
+    queue: RecallQueue[RecallKey, bytes] = state.batch_queue
+    cues = [dict(c) for c in body.cues]
+    state.service.check_batch(cues)  # what recall checks first, before the run is shared
+    return await queue.submit((team, name, recall_options(body.options)), cues)
+
+
+def shared_batches(
+    service: RecallService, heap: HeapFreezer, state: Any
+) -> Callable[[RecallKey, Sequence[list[dict[str, Any]]]], list[bytes | ServiceError]]:
+    """The run of :func:`recall_many_shared`'s queue: the batches' cues settled together,
+    each batch's answer written on its own.
+
+    Under load a worker's engine thread then switches to its event loop once per several
+    requests rather than once per request; each switch costs both sides their warm caches
+    (measured with ``cuebank bench``: 128 and 256 cues per request cost 12% and 18% less CPU
+    per cue in the server than 64, while in-process the cost per cue is the same at all
+    three). A cue's answer does not depend on the cues that share its run (see the README).
+    A batch with a refused cue gets that refusal, and the route then answers it with the
+    request's own numbering; the others are answered.
+    """
+
+    def run(key: RecallKey, batches: Sequence[list[dict[str, Any]]]) -> list[bytes | ServiceError]:
+        cues = [cue for batch in batches for cue in batch]
+        answers = service.recall_each(key[0], key[1], cues, key[2])
+        heap.after_run()
+        out: list[bytes | ServiceError] = []
+        start = 0
+        for batch in batches:
+            part = answers[start : start + len(batch)]
+            start += len(batch)
+            refused = next((a for a in part if isinstance(a, ServiceError)), None)
+            if refused is not None:
+                out.append(refused)
+                continue
+            results = [a for a in part if isinstance(a, RecallResult)]
+            count_verdicts(state.metrics, results)
+            out.append(answer_bytes({"results": results}))
+        return out
+
+    return run
 
 
 def _json(body: bytes) -> Response:
