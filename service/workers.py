@@ -132,13 +132,14 @@ class WorkerPool:
         self._stopping = False
 
     def run(self) -> int:
-        """Serve until SIGINT or SIGTERM (0), or until a worker dies starting up (1)."""
+        """Serve until SIGINT or SIGTERM (0), or until a worker fails starting up (1)."""
         previous = {
             sig: signal.signal(sig, self._on_signal) for sig in (signal.SIGINT, signal.SIGTERM)
         }
         workers: list[tuple[SpawnProcess, Event]] = []
         try:
-            workers = [self._start(i) for i in range(self.count)]
+            for i in range(self.count):  # one at a time: those started are stopped on an error
+                workers.append(self._start(i))
             return self._supervise(workers)
         finally:
             self._stop([process for process, _ in workers])
