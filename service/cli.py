@@ -480,12 +480,14 @@ def _serve_worker(started: Any, host: str, port: int) -> None:
 
     Runs in a spawned process; ``started`` (an event) is set once the server serves.
     """
+    from service.api.app import create_app
     from service.settings import get_settings
     from service.workers import reuse_port_socket
 
+    settings = get_settings()  # from CUEBANK_*, which run_serve set for the workers
     sock = reuse_port_socket(host, port, listen=False)  # the server listens once it is ready
     try:
-        code = _run_server(app_from_environment(), sock, get_settings(), started=started)
+        code = _run_server(create_app(settings), sock, settings, started=started)
     except CommandError as exc:
         print(f"cuebank serve: {exc}", file=sys.stderr)
         code = exc.code
