@@ -874,6 +874,7 @@ def _measure_server(
             _check_answers(targets)
             bursts = _warm_up(gen, targets, concurrency)
             runs: dict[str, list[_Load]] = {name: [] for name in targets}
+            sizes = {_batch(size): size for size in BATCH_SIZES}
             # The figures compared are measured in turns, A B A B, each round a share of the
             # time, so a drift of the machine's speed falls on both sides of every ratio.
             for _ in range(rounds):
@@ -882,9 +883,8 @@ def _measure_server(
                     runs[name].append(
                         gen.run(targets[name], max(1, seconds // rounds), concurrency)
                     )
-                    for size in BATCH_SIZES:
-                        if name == _batch(size):
-                            reference.measure(rate_seconds, size)  # the idle server beside it
+                    if name in sizes:
+                        reference.measure(rate_seconds, sizes[name])  # the idle server beside it
             loads = {name: combine_loads(runs[name]) for name in runs}
     finally:
         reference.close()
