@@ -1015,28 +1015,30 @@ class RecallService:
         slices = compiled.codec.schema.slices
         per_cue: list[dict[str, DecodedField]] = [{} for _ in range(states.shape[0])]
         rest = np.flatnonzero(~whole)
-        sf = states[rest].astype(np.float32)
+        sf = states[rest].astype(np.float32) if rest.size else None
         for name, cand in compiled.candidates.items():
+            own = cand.of_memory[nearest]  # each state's nearest memory's own value
+            for i, j in enumerate(own.tolist()):
+                per_cue[i][name] = cand.exact(j)
+            if sf is None:
+                continue  # every state is its memory's pattern: nothing to compare
             block = sf[:, slices[name]]
             d = block.shape[1]
-            own = cand.of_memory[nearest]  # each state's nearest memory's own value
             # Where a block is exactly that value's code, the value scores the maximum, 1, and
             # wins the tie rule below: the answer is known without the product (the common
             # case, a settled state on a stored memory).
             miss = np.flatnonzero(~(block == cand.codes(own[rest])).all(axis=1))
+            if not miss.size:
+                continue
             rows = rest[miss]  # the states whose block is not their memory's value's code
-            best = own.copy()
-            scores = np.ones(len(best), dtype=np.float64)
-            if rows.size:
-                full = cand.scores(block[miss])  # (rows, n_values)
-                # on equal scores, the nearest memory's own value wins
-                ranked = full.astype(np.float64)
-                ranked[np.arange(rows.size), own[rows]] += 1e-9
-                picked = np.argmax(ranked, axis=1)
-                best[rows] = picked
-                scores[rows] = full[np.arange(rows.size), picked]
+            full = cand.scores(block[miss])  # (rows, n_values)
+            # on equal scores, the nearest memory's own value wins
+            ranked = full.astype(np.float64)
+            ranked[np.arange(rows.size), own[rows]] += 1e-9
+            picked = np.argmax(ranked, axis=1)
+            scores = full[np.arange(rows.size), picked].astype(np.float64)
             root = math.sqrt(d)
-            for i, (j, m) in enumerate(zip(best.tolist(), scores.tolist(), strict=True)):
+            for i, j, m in zip(rows.tolist(), picked.tolist(), scores.tolist(), strict=True):
                 per_cue[i][name] = (
                     cand.exact(j)
                     if m == 1.0
