@@ -22,6 +22,7 @@ array([[1., 1.]], dtype=float32)
 from __future__ import annotations
 
 import functools
+import sys
 from typing import Any, Final
 
 import numba
@@ -61,18 +62,51 @@ _SIGNATURE: Final = (
 )
 
 
-def compile_kernel(function: Any, njit: Any = numba.njit) -> Any:
+def _pack_states_py(states, signs, known, n_known):  # type: ignore[no-untyped-def]  # pragma: no cover - compiled
+    # The words np.packbits(states > 0) and np.packbits(states != 0) give, viewed as
+    # little-endian uint64: unit u sits in byte (u mod 64) // 8 of word u // 64, at bit
+    # 7 - u mod 8 of that byte (the first unit of a byte is its high bit). Branch-free: the
+    # units of a cue are -1, 0 and +1 in any order.
+    n_states, n_units = states.shape
+    for i in range(n_states):
+        count = np.uint64(0)
+        for w in range(signs.shape[1]):
+            s_word = np.uint64(0)
+            k_word = np.uint64(0)
+            for b in range(8):
+                base = w * 64 + b * 8
+                s_byte = np.uint64(0)
+                k_byte = np.uint64(0)
+                for t in range(min(8, max(0, n_units - base))):
+                    v = states[i, base + t]
+                    s_byte |= np.uint64(v > 0) << np.uint64(7 - t)
+                    k_byte |= np.uint64(v != 0) << np.uint64(7 - t)
+                s_word |= s_byte << np.uint64(8 * b)
+                k_word |= k_byte << np.uint64(8 * b)
+            signs[i, w] = s_word
+            known[i, w] = k_word
+            count += _popcount(k_word)
+        n_known[i] = np.float32(count)
+
+
+_PACK_SIGNATURE: Final = "void(float32[:, ::1], uint64[:, ::1], uint64[:, ::1], float32[::1])"
+
+
+def compile_kernel(function: Any, njit: Any = numba.njit, signature: str = _SIGNATURE) -> Any:
     """``function`` compiled for its one signature, the machine code cached on disk where
     numba finds a writable place (beside this module, or ``NUMBA_CACHE_DIR``, or the user's
     cache directory); where it finds none (a read-only install and home), compiled in memory
     on every start instead of refusing to import."""
     try:
-        return njit(_SIGNATURE, cache=True, nogil=True)(function)
+        return njit(signature, cache=True, nogil=True)(function)
     except RuntimeError:  # numba: "cannot cache function ...: no locator available"
-        return njit(_SIGNATURE, cache=False, nogil=True)(function)
+        return njit(signature, cache=False, nogil=True)(function)
 
 
 _count_dots = compile_kernel(_count_dots_py)
+_pack_states = compile_kernel(_pack_states_py, signature=_PACK_SIGNATURE)
+#: The kernel's word layout is numpy's on a little-endian machine; elsewhere packbits packs.
+_PACK_IN_KERNEL: Final = sys.byteorder == "little"
 
 
 def pack(rows: NDArray[Any]) -> NDArray[np.uint8]:
@@ -120,11 +154,30 @@ def packed_dots(states: NDArray[Any], bits: NDArray[np.uint8], n_units: int) -> 
     stored = words(bits)
     out = np.empty((states.shape[0], stored.shape[0]), dtype=np.float32)
     if out.size:
-        signs = words(np.packbits(states > 0, axis=1))
-        known = words(np.packbits(states != 0, axis=1))
-        n_known = np.count_nonzero(states, axis=1).astype(np.float32)
+        signs, known, n_known = _packed_states(states)
         _count_dots(signs, known, n_known, stored, out)
     return out
+
+
+def _packed_states(
+    states: NDArray[Any],
+) -> tuple[NDArray[np.uint64], NDArray[np.uint64], NDArray[np.float32]]:
+    """The words of each state's +1 units and of its known units, and its known count."""
+    if not _PACK_IN_KERNEL:
+        return (
+            words(np.packbits(states > 0, axis=1)),
+            words(np.packbits(states != 0, axis=1)),
+            np.count_nonzero(states, axis=1).astype(np.float32),
+        )
+    # One pass in the kernel: two packbits, a count and the padding copies were about a
+    # dozen array calls, several times the dot products' own time for one state.
+    n_states, n_units = states.shape
+    n_words = -(-n_units // 64)
+    signs = np.empty((n_states, n_words), dtype=np.uint64)
+    known = np.empty((n_states, n_words), dtype=np.uint64)
+    n_known = np.empty(n_states, dtype=np.float32)
+    _pack_states(np.ascontiguousarray(states, dtype=np.float32), signs, known, n_known)
+    return signs, known, n_known
 
 
 @functools.lru_cache(maxsize=64)

@@ -426,6 +426,17 @@ def _check_blocks(blocks: Sequence[slice], n_units: int) -> list[slice]:
     return out
 
 
+@functools.lru_cache(maxsize=256)
+def _block_members(n_units: int, bounds: tuple[tuple[int, int], ...]) -> NDArray[np.float32]:
+    """The 0/1 indicator columns of the blocks ``bounds`` (start, stop), shape (n_units,
+    n_blocks): a schema's blocks are the same on every call, so built once (read-only)."""
+    member = np.zeros((n_units, len(bounds)), dtype=np.float32)
+    for j, (start, stop) in enumerate(bounds):
+        member[start:stop, j] = 1.0
+    member.flags.writeable = False
+    return member
+
+
 def field_agreement(
     states: NDArray[np.float32], cues: NDArray[np.float32], blocks: Sequence[slice]
 ) -> NDArray[np.float64]:
@@ -442,10 +453,7 @@ def field_agreement(
     """
     # Every block's sums in one product with the blocks' indicator columns: the terms are
     # -1, 0 and +1, so the float32 sums are exact integers (below 2²⁴ units) whatever the order.
-    n_units = states.shape[1]
-    member = np.zeros((n_units, len(blocks)), dtype=np.float32)
-    for j, b in enumerate(blocks):
-        member[b, j] = 1.0
+    member = _block_members(states.shape[1], tuple((b.start, b.stop) for b in blocks))
     terms = np.concatenate([states * cues, (cues != 0).astype(np.float32)])
     sums = (terms @ member).astype(np.float64)
     agree_sum, known = sums[: states.shape[0]], sums[states.shape[0] :]

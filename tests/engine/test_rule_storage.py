@@ -193,6 +193,27 @@ class TestPatternDots:
         assert got.dtype == np.float32
         np.testing.assert_array_equal(got, expected)
 
+    @pytest.mark.parametrize("n_units", [1, 7, 63, 64, 65, 130, 1024])
+    @pytest.mark.parametrize("n_states", [1, 3, 40])
+    @pytest.mark.parametrize("dtype", [np.float32, np.int8])
+    def test_states_are_packed_as_numpys_packbits_packs_them(
+        self, n_units: int, n_states: int, dtype: type
+    ) -> None:
+        # the packing kernel against np.packbits and np.count_nonzero, the reference it
+        # replaced, on states of -1, 0 and +1 in any order (and a state with nothing known)
+        rng = np.random.default_rng(n_units * 100 + n_states)
+        states = rng.integers(-1, 2, size=(n_states, n_units)).astype(dtype)
+        states[0] = 0
+        signs, known, n_known = bits_module._packed_states(states)
+        np.testing.assert_array_equal(signs, bits_module.words(np.packbits(states > 0, axis=1)))
+        np.testing.assert_array_equal(known, bits_module.words(np.packbits(states != 0, axis=1)))
+        np.testing.assert_array_equal(n_known, np.count_nonzero(states, axis=1))
+        X = rng.choice(np.array([-1, 1], dtype=np.int8), size=(5, n_units))
+        np.testing.assert_array_equal(
+            bits_module.packed_dots(states, bits_module.pack(X), n_units),
+            states.astype(np.int64) @ X.astype(np.int64).T,
+        )
+
 
 class TestHebbianUpdate:
     @pytest.mark.parametrize("n_units", [5, 300, 1500])
@@ -359,5 +380,6 @@ class TestKernelCompile:
         assert compiled[1] is kernel
         assert compiled[3] is True  # still releases the GIL
 
-    def test_the_kernel_module_is_compiled_for_its_one_signature(self) -> None:
+    def test_the_kernels_are_compiled_for_their_one_signature(self) -> None:
         assert len(bits_module._count_dots.signatures) == 1
+        assert len(bits_module._pack_states.signatures) == 1
