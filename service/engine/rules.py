@@ -41,6 +41,7 @@ from numpy.typing import NDArray
 from ._checks import as_patterns, check_float, check_int
 from .bits import pack, packed_dots, unpack, unpack_f32
 from .errors import DependentMemoryError, EmptyMemoryError, ParameterError
+from .rows import top2
 
 __all__ = [
     "RULE_NAMES",
@@ -956,16 +957,8 @@ class DenseRule(MemoryRule):
     ) -> tuple[F32, NDArray[np.intp], F64, F64, NDArray[np.bool_], NDArray[np.float32]]:
         """:meth:`_winners` from dot products already counted (``dots`` is handed back, its
         values as they were)."""
-        n_states, n_mem = dots.shape
-        rows = np.arange(n_states)
-        best = np.asarray(dots.argmax(axis=1))
-        top = dots[rows, best].astype(np.float64)
-        if n_mem > 1:
-            dots[rows, best] = -np.inf
-            runner = dots.max(axis=1).astype(np.float64)
-            dots[rows, best] = top
-        else:
-            runner = np.full(n_states, -np.inf)
+        best, top32, runner32, _, _ = top2(dots)  # runner: -inf with one memory
+        top, runner = top32.astype(np.float64), runner32.astype(np.float64)
         one_hot = runner < top - self._one_hot_gap(betas)
         return dots, best, runner, top, one_hot, betas
 

@@ -59,6 +59,7 @@ from numpy.typing import NDArray
 from ._checks import as_cues, as_patterns, check_float, check_int
 from .dynamics import SettleResult
 from .errors import ParameterError, ShapeError
+from .rows import best_k, top2
 from .rules import MemoryRule, check_fitted_rule
 
 __all__ = [
@@ -221,20 +222,13 @@ class VerdictBatch:
 
 
 def _top2(
-    m: NDArray[np.float32],
-) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64]]:
-    """Index of the best column, best value and second-best value of each row (``m`` is
-    changed while it runs, and given back as it was)."""
-    best = np.argmax(m, axis=1).astype(np.int64)
-    rows = np.arange(m.shape[0])
-    top = m[rows, best].astype(np.float64)
-    if m.shape[1] == 1:
-        return best, top, np.full(m.shape[0], -1.0)
-    kept = m[rows, best]  # masked in place for the second max, then put back
-    m[rows, best] = -np.inf
-    second = m.max(axis=1).astype(np.float64)
-    m[rows, best] = kept
-    return best, top, second
+    m: NDArray[np.float32], threshold: float = math.inf
+) -> tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], Any]:
+    """Each row's best column, best value, second-best value (-1 with one column), least
+    value and count of values at least ``threshold`` (see :func:`rows.top2`)."""
+    best, top, runner, low, above = top2(m, threshold)
+    second = runner.astype(np.float64) if m.shape[1] > 1 else np.full(m.shape[0], -1.0)
+    return best, top.astype(np.float64), second, low.astype(np.float64), above
 
 
 def judge(
@@ -321,24 +315,18 @@ def judge(
         both = np.concatenate([sf, cf])
         dots = rule.pattern_dots(both) if rule is not None else np.asarray(both @ xf.T)
     overlaps = dots[:n_states] / np.float32(n_units)  # (B, P), exact up to rounding of 1/N
-    best, m_best, m_second = _top2(overlaps)
-    m_min = overlaps.min(axis=1).astype(np.float64)
+    ceiling_state = chance_ceiling(n_mem, n_units)
+    best, m_best, m_second, m_min, n_present = _top2(overlaps, ceiling_state)
     cue_ov = dots[n_states:] / n_known[:, None].astype(np.float32)
-    cue_best, c_best, c_second = _top2(cue_ov)
+    cue_best, c_best, c_second, _, _ = _top2(cue_ov)
     agreement = np.einsum("ij,ij->i", sf, cf).astype(np.float64) / n_known
     field_agr = field_agreement(sf, cf, _check_blocks(blocks, n_units)) if blocks else agreement
 
-    if k < n_mem:
-        part = np.argpartition(-overlaps, k - 1, axis=1)[:, :k]
-    else:
-        part = np.tile(np.arange(n_mem), (overlaps.shape[0], 1))
-    part_ov = np.take_along_axis(overlaps, part, axis=1)
-    order = np.argsort(-part_ov, axis=1, kind="stable")
-    nearest = np.take_along_axis(part, order, axis=1).astype(np.int64)
-    nearest_ov = np.take_along_axis(part_ov, order, axis=1).astype(np.float64)
+    # the k nearest, nearest first, equal overlaps by memory index
+    nearest, near_ov = best_k(overlaps, k)
+    nearest_ov = near_ov.astype(np.float64)
 
     theta_m = th.resolved_recall_overlap(n_units)
-    ceiling_state = chance_ceiling(n_mem, n_units)
     ceiling_cue = np.array([_chance_ceiling(n_mem, n) for n in n_known.tolist()])
     theta_a = (
         np.full(c.shape[0], th.min_agreement)
@@ -351,7 +339,6 @@ def judge(
         else 3.0 * math.sqrt(2.0) / np.sqrt(n_known)
     )
     theta_f = th.min_field_agreement if th.min_field_agreement is not None else -np.inf
-    n_present = (overlaps >= np.float32(ceiling_state)).sum(axis=1)
 
     verdict: list[str] = []
     reason: list[str] = []
