@@ -57,6 +57,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ._checks import as_cues, as_patterns, check_float, check_int
+from .bits import compile_kernel
 from .dynamics import SettleResult
 from .errors import ParameterError, ShapeError
 from .rows import best_k, top2
@@ -413,15 +414,27 @@ def _check_blocks(blocks: Sequence[slice], n_units: int) -> list[slice]:
     return out
 
 
-@functools.lru_cache(maxsize=256)
-def _block_members(n_units: int, bounds: tuple[tuple[int, int], ...]) -> NDArray[np.float32]:
-    """The 0/1 indicator columns of the blocks ``bounds`` (start, stop), shape (n_units,
-    n_blocks): a schema's blocks are the same on every call, so built once (read-only)."""
-    member = np.zeros((n_units, len(bounds)), dtype=np.float32)
-    for j, (start, stop) in enumerate(bounds):
-        member[start:stop, j] = 1.0
-    member.flags.writeable = False
-    return member
+def _field_agreement_py(states, cues, starts, stops, out):  # type: ignore[no-untyped-def]  # pragma: no cover - compiled
+    # per state, the least over blocks of (Σ s·c over the block's known units) / their count
+    for i in range(states.shape[0]):
+        least = np.inf
+        for j in range(starts.shape[0]):
+            agree = 0
+            known = 0
+            for u in range(starts[j], stops[j]):
+                c = cues[i, u]
+                if c != 0:
+                    known += 1
+                    agree += int(states[i, u] * c)
+            if known > 0:
+                least = min(least, np.float64(agree) / np.float64(known))
+        out[i] = least if least < np.inf else 1.0
+
+
+_field_agreement = compile_kernel(
+    _field_agreement_py,
+    signature="void(float32[:, ::1], float32[:, ::1], int64[::1], int64[::1], float64[::1])",
+)
 
 
 def field_agreement(
@@ -438,12 +451,18 @@ def field_agreement(
     >>> field_agreement(s, c, [slice(0, 2), slice(2, 4)]).tolist()
     [-1.0]
     """
-    # Every block's sums in one product with the blocks' indicator columns: the terms are
-    # -1, 0 and +1, so the float32 sums are exact integers (below 2²⁴ units) whatever the order.
-    member = _block_members(states.shape[1], tuple((b.start, b.stop) for b in blocks))
-    terms = np.concatenate([states * cues, (cues != 0).astype(np.float32)])
-    sums = (terms @ member).astype(np.float64)
-    agree_sum, known = sums[: states.shape[0]], sums[states.shape[0] :]
-    agree = np.where(known > 0, agree_sum / np.maximum(known, 1.0), np.inf)
-    least = agree.min(axis=1) if len(blocks) else np.full(states.shape[0], np.inf)
-    return np.where(np.isfinite(least), least, 1.0)
+    # One compiled pass: the sums are of -1, 0 and +1 terms, integers, and each block's
+    # agreement is one float64 division of two of them, whatever the order of the terms.
+    spans = [b.indices(states.shape[1]) for b in blocks]
+    if any(step != 1 for _, _, step in spans):
+        raise ParameterError("blocks must be contiguous ranges of units (slices with step 1)")
+    bounds = np.array([(a, max(a, z)) for a, z, _ in spans], dtype=np.int64).reshape(-1, 2)
+    out = np.empty(states.shape[0], dtype=np.float64)
+    _field_agreement(
+        np.ascontiguousarray(states, dtype=np.float32),
+        np.ascontiguousarray(cues, dtype=np.float32),
+        np.ascontiguousarray(bounds[:, 0]),
+        np.ascontiguousarray(bounds[:, 1]),
+        out,
+    )
+    return out

@@ -20,6 +20,7 @@ from service.engine import (
     judge,
     settle,
 )
+from service.engine.errors import ParameterError
 from service.engine.verdict import field_agreement
 
 PatternMaker = Callable[[int, int], NDArray[np.int8]]
@@ -212,3 +213,12 @@ def test_field_agreement_is_the_least_agreement_over_each_known_block(
             if np.count_nonzero(cues[i, b])
         ]
         assert got[i] == (min(per_block) if per_block else 1.0)
+
+
+def test_field_agreement_reads_open_slices_and_refuses_strided_ones() -> None:
+    s = np.array([[1, 1, 1, 1]], dtype=np.float32)
+    c = np.array([[1, -1, 1, 1]], dtype=np.float32)
+    # slice(None, 2) is units 0 and 1: agreement 0; slice(2, None) agrees fully
+    assert field_agreement(s, c, [slice(None, 2), slice(2, None)]).tolist() == [0.0]
+    with pytest.raises(ParameterError, match="contiguous"):
+        field_agreement(s, c, [slice(0, 4, 2)])
