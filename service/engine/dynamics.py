@@ -30,7 +30,6 @@ Examples
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -223,12 +222,13 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
     n_cues, n_units = cues.shape
     state = cues.astype(np.float32)
     cue_products = rule._dots(state)  # counted once, for the lone-cue path and the loop alike
-    if n_cues == 1:
-        alone = _settle_one(rule, cues, limit, cue_products[0])
-        if alone is not None:
-            return alone
     # Σ s² counts the known units exactly (ones, in float32), a third of count_nonzero's time
     n_known = np.einsum("ij,ij->i", state, state).astype(np.int64)
+    first = rule._rank(cue_products, rule._betas(state, n_known))
+    if n_cues == 1:
+        alone = _settle_one(rule, cues, limit, first)
+        if alone is not None:
+            return alone
     prev = np.empty_like(state)  # state one step back; read only where written
     steps = np.zeros(n_cues, dtype=np.int64)
     converged = np.zeros(n_cues, dtype=bool)
@@ -238,7 +238,6 @@ def _settle_dense(rule: DenseRule, cues: NDArray[np.int8], limit: int) -> Settle
     cue_dots: NDArray[np.float32] | None = None
     state_dots = np.empty((n_cues, rule.n_memories_), dtype=np.float32) if keep else None
     state_known = np.zeros(n_cues, dtype=bool)
-    first = rule._rank(cue_products, rule._betas(state, n_known))
     done_at_once = _settled_at_once(rule, cues, limit, first, keep)
     if done_at_once is not None:
         return done_at_once
@@ -382,32 +381,22 @@ def _updates_to_best(rule: DenseRule, ranked: tuple[Any, ...]) -> NDArray[np.boo
 
 
 def _settle_one(
-    rule: DenseRule, cues: NDArray[np.int8], limit: int, dots: NDArray[np.float32]
+    rule: DenseRule, cues: NDArray[np.int8], limit: int, first: tuple[Any, ...]
 ) -> SettleResult | None:
     """A lone cue whose first readout is one-hot and settles in that step (or provably in
-    the next), in a handful of scalar steps from its dot products ``dots`` with every
-    memory; None where the general loop must decide (it reuses the same ``dots``).
+    the next), in a handful of scalar steps from what ``DenseRule._rank`` gave for it; None
+    where the general loop must decide (it reuses the same ranking).
 
-    The same tests and the same numbers as :func:`_settle_dense`'s first step (the gap as
-    ``DenseRule._one_hot_gap`` computes it), for one cue: there the array calls around
-    the dot products cost more than the products.
+    The same tests and the same numbers as :func:`_settle_dense`'s first step, for one cue:
+    there the array calls around the dot products cost more than the products.
     """
-    s = cues[0]
-    n_units = s.shape[0]
-    n_mem = dots.shape[0]
-    best = int(dots.argmax())
-    top = float(dots[best])
-    if n_mem > 1:
-        dots[best] = -np.inf
-        runner = float(dots.max())
-        dots[best] = top
-    else:
-        runner = -math.inf
-    known = int(np.count_nonzero(s)) or 1
-    beta = float(np.float32(rule.beta_) / np.float32(known))  # as DenseRule._betas rounds it
-    gap = rule._one_hot_nats() / beta
-    if not runner < top - gap:
+    dots, best_, runner_, top_, one_hot, betas = first
+    if not one_hot[0]:
         return None
+    n_units = cues.shape[1]
+    n_mem = dots.shape[1]
+    best, top, runner = int(best_[0]), float(top_[0]), float(runner_[0])
+    gap = float(rule._one_hot_gap(betas)[0])
     if top == n_units:  # the cue is the winning pattern: nothing changes
         steps, state, same = 1, cues.copy(), True
     elif limit > 1 and _stays_on_winner(runner, top, n_units, gap):
