@@ -372,11 +372,11 @@ def _updates_to_best(rule: DenseRule, ranked: tuple[Any, ...]) -> NDArray[np.boo
     """Whether each state's sign update is its best memory's pattern, from what
     ``DenseRule._rank`` gave: the readout is one-hot, or the best memory holds more than half
     the softmax weight (the two tests of ``DenseRule._fields``, on the same numbers)."""
-    dots, best, _, _, one_hot, betas = ranked
+    dots, _, _, _, one_hot, betas = ranked
     out = np.array(one_hot, dtype=bool)
     slow = np.flatnonzero(~out)
     if slow.size:
-        out[slow] = rule._dominant(rule._weights(dots, betas, slow), best[slow])
+        out[slow] = rule._dominant(dots, betas, slow)
     return out
 
 

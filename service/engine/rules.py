@@ -39,7 +39,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ._checks import as_patterns, check_float, check_int
-from .bits import pack, packed_dots, unpack, unpack_f32
+from .bits import compile_kernel, pack, packed_dots, unpack, unpack_f32
 from .errors import DependentMemoryError, EmptyMemoryError, ParameterError
 from .rows import top2
 
@@ -800,6 +800,27 @@ def default_beta(n_units: int) -> float:
     return float(min(80.0, max(20.0, math.sqrt(n))))
 
 
+def _best_weights_py(dots, betas, rows, out):  # type: ignore[no-untyped-def]  # pragma: no cover - compiled
+    # the softmax weight of row rows[k]'s largest entry: 1 / Σ_μ exp(β_i dots[i, μ] − max)
+    for k in range(rows.shape[0]):
+        i = rows[k]
+        beta = betas[i]
+        top = -np.inf
+        for j in range(dots.shape[1]):
+            z = dots[i, j] * beta
+            if z > top:
+                top = z
+        total = 0.0
+        for j in range(dots.shape[1]):
+            total += np.float64(np.exp(dots[i, j] * beta - top))
+        out[k] = np.float32(1.0 / total)
+
+
+_best_weights = compile_kernel(
+    _best_weights_py, signature="void(float32[:, ::1], float32[::1], int64[::1], float32[::1])"
+)
+
+
 class DenseRule(MemoryRule):
     """Modern (dense) Hopfield memory: ξ ← sign(Xᵀ softmax(β X ξ / n_known)).
 
@@ -992,14 +1013,12 @@ class DenseRule(MemoryRule):
             return self._x[best], best, runner, top, dots
         fields = np.empty((n_states, self._x.shape[1]), dtype=np.float32)
         fields[one_hot] = self._x[best[one_hot]]
+        if signs_only:
+            dominant = self._dominant(dots, betas, slow)
+            fields[slow[dominant]] = self._x[best[slow[dominant]]]
+            slow = slow[~dominant]
         if slow.size:
-            z = self._weights(dots, betas, slow)
-            if signs_only:
-                dominant = self._dominant(z, best[slow])
-                fields[slow[dominant]] = self._x[best[slow[dominant]]]
-                z, slow = z[~dominant], slow[~dominant]
-            if slow.size:
-                fields[slow] = self._readout(z)
+            fields[slow] = self._readout(self._weights(dots, betas, slow))
         winner = np.where(one_hot, best, -1)
         return fields, winner, runner, top, dots
 
@@ -1013,11 +1032,25 @@ class DenseRule(MemoryRule):
         z /= z.sum(axis=1, keepdims=True)
         return z
 
-    def _dominant(self, weights: F32, best: NDArray[np.intp]) -> NDArray[np.bool_]:
-        """States whose best memory holds more than half the softmax weight (see
-        :meth:`_fields`): their sign update is that memory's pattern."""
-        # the best memory's weight sits where the max was subtracted: exp(0) / sum
-        return np.asarray(weights[np.arange(best.size), best] > np.float32(0.5 + 1e-3))
+    def _dominant(
+        self, dots: F32, betas: NDArray[np.float32], rows: NDArray[np.intp]
+    ) -> NDArray[np.bool_]:
+        """Whether each of the states ``rows`` has its best memory holding more than half the
+        softmax weight (see :meth:`_fields`): their sign update is that memory's pattern.
+
+        The best memory's weight is exp(0) / Σ exp(β'(x_μ·s) − max), the softmax of
+        :meth:`_weights` read at its maximum; one compiled pass per state sums it (in float64,
+        from float32 terms) without building the weights.
+        """
+        weight = np.empty(rows.size, dtype=np.float32)
+        if rows.size:
+            _best_weights(
+                np.ascontiguousarray(dots, dtype=np.float32),
+                np.ascontiguousarray(betas, dtype=np.float32),
+                np.ascontiguousarray(rows, dtype=np.int64),
+                weight,
+            )
+        return np.asarray(weight > np.float32(0.5 + 1e-3))
 
     def _readout(self, a: F32) -> F32:
         """``a @ X`` over the weights above ``readout_tolerance / P``, by :func:`exact_readout`.

@@ -358,6 +358,32 @@ class TestDenseRule:
         dominant = a.max(axis=1) > 0.5 + 1e-3
         assert 0 < dominant.sum() < len(states), "both kinds of state must be under test"
 
+    @pytest.mark.parametrize("beta", [12.0, 16.0, 80.0])
+    def test_the_dominance_test_reads_the_best_memorys_softmax_weight(
+        self, random_patterns: PatternMaker, beta: float
+    ) -> None:
+        # The compiled pass sums the best memory's weight without building the softmax; held
+        # to scipy's softmax of β' X s in float64 (scipy.special.softmax), away from weights
+        # within rounding of the 0.5 + 1e-3 threshold
+        from scipy.special import softmax
+
+        X = random_patterns(400, 128)
+        rule = DenseRule(beta=beta).fit(X)
+        rng = np.random.default_rng(int(beta))
+        states = X[rng.integers(0, 400, size=300)].astype(np.float32)
+        states[rng.random(states.shape) < np.linspace(0.0, 0.5, 300)[:, None]] *= -1
+        states[rng.random(states.shape) < 0.2] = 0.0
+        dots = rule._dots(states)
+        betas = rule._betas(states, None)
+        rows = np.arange(0, 300, 2)  # every other state: rows index into the whole batch
+        got = rule._dominant(dots, betas, rows)
+        w = softmax(dots[rows].astype(np.float64) * betas[rows, None].astype(np.float64), axis=1)
+        weight = w.max(axis=1)
+        firm = np.abs(weight - (0.5 + 1e-3)) > 1e-5
+        np.testing.assert_array_equal(got[firm], (weight > 0.5 + 1e-3)[firm])
+        assert 0 < got.sum() < rows.size, "both kinds of state must be under test"
+        assert rule._dominant(dots, betas, rows[:0]).shape == (0,)
+
     @pytest.mark.parametrize("n_mem", [300, 5000])
     def test_a_states_fields_are_the_same_bits_whatever_the_states_beside_it(
         self, random_patterns: PatternMaker, n_mem: int
