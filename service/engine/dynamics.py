@@ -396,7 +396,7 @@ def _settle_one(
     n_units = cues.shape[1]
     n_mem = dots.shape[1]
     best, top, runner = int(best_[0]), float(top_[0]), float(runner_[0])
-    gap = float(rule._one_hot_gap(betas)[0])
+    gap = rule._one_hot_nats() / float(betas[0])  # DenseRule._one_hot_gap, as a scalar
     if top == n_units:  # the cue is the winning pattern: nothing changes
         steps, state, same = 1, cues.copy(), True
     elif limit > 1 and _stays_on_winner(runner, top, n_units, gap):
