@@ -275,7 +275,12 @@ class RecallRead(_Output):
         description="The least agreement with the cue over any one known field (low: far)."
     )
     fields: dict[str, DecodedFieldRead]
-    nearest: list[NeighbourRead]
+    nearest: list[NeighbourRead] = Field(
+        description=(
+            "The top_k memories nearest the settled state, nearest first; memories with equal "
+            "overlap come in the order the compiled collection holds them."
+        )
+    )
     steps: int
     converged: bool
     cycle_length: int

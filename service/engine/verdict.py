@@ -177,7 +177,7 @@ class VerdictBatch:
         Index of the memory the cue itself overlaps most.
     cue_overlap, cue_margin, cue_agreement : ndarray of float64
     nearest : ndarray of int64, shape (n_cues, k)
-        The k memories nearest the settled state, best first.
+        The k memories nearest the settled state, best first; equal overlaps in memory order.
     nearest_overlap : ndarray of float64, shape (n_cues, k)
     """
 
