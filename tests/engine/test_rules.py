@@ -50,6 +50,17 @@ def storkey_literal(patterns: NDArray[np.int8]) -> NDArray[np.float64]:
     return w
 
 
+def doubtful_states(
+    X: NDArray[np.int8], rng: np.random.Generator, count: int
+) -> NDArray[np.float32]:
+    """``count`` stored patterns as float32 states from sure to hopeless: the share of flipped
+    units rises from 0 to a half down the rows, and a fifth of all units are unknown."""
+    states = X[rng.integers(0, X.shape[0], size=count)].astype(np.float32)
+    states[rng.random(states.shape) < np.linspace(0.0, 0.5, count)[:, None]] *= -1
+    states[rng.random(states.shape) < 0.2] = 0.0
+    return states
+
+
 def dependent_set(rng: np.random.Generator, n_units: int) -> NDArray[np.int8]:
     """Five ±1 patterns where row 4 = row 0 − row 2 + row 3 and row 1 is unrelated.
 
@@ -346,10 +357,7 @@ class TestDenseRule:
         X = random_patterns(300, 96)
         rule = DenseRule(beta=beta).fit(X)
         rng = np.random.default_rng(int(beta))
-        states = X[rng.integers(0, 300, size=200)].astype(np.float32)
-        flip = rng.random(states.shape) < np.linspace(0.0, 0.5, 200)[:, None]
-        states[flip] *= -1
-        states[rng.random(states.shape) < 0.2] = 0.0
+        states = doubtful_states(X, rng, 200)
         fast, _, _, _, _ = rule._fields(states, None, signs_only=True)
         a = rule.softmax(states).astype(np.float64)
         plain = a @ X.astype(np.float64)
@@ -370,9 +378,7 @@ class TestDenseRule:
         X = random_patterns(400, 128)
         rule = DenseRule(beta=beta).fit(X)
         rng = np.random.default_rng(int(beta))
-        states = X[rng.integers(0, 400, size=300)].astype(np.float32)
-        states[rng.random(states.shape) < np.linspace(0.0, 0.5, 300)[:, None]] *= -1
-        states[rng.random(states.shape) < 0.2] = 0.0
+        states = doubtful_states(X, rng, 300)
         dots = rule._dots(states)
         betas = rule._betas(states, None)
         rows = np.arange(0, 300, 2)  # every other state: rows index into the whole batch
